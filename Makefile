@@ -1,0 +1,48 @@
+# Two commands do all the set-up on a fresh machine: `make test` and `make demo`.
+# Both create .venv with the interpreter named by PYTHON (3.11 or newer) and install clampd
+# into it in editable mode with the extras they need.
+
+PYTHON ?= python3
+VENV ?= .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed-dev
+
+.PHONY: test demo lint typecheck bench venv clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install -q --upgrade pip
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install -q -e '.[dev]'
+	touch $(STAMP)
+
+venv: $(STAMP)
+
+# mypy cannot follow setuptools' editable-install finder, so it reads the sources through
+# a link tree that gives the top-level folders their import names (clampd.protocol, ...).
+.typecheck/clampd:
+	mkdir -p .typecheck/clampd
+	ln -sfn ../../protocol .typecheck/clampd/protocol
+	ln -sfn ../../daemon .typecheck/clampd/daemon
+	ln -sfn ../../simulators .typecheck/clampd/simulators
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+
+typecheck: $(STAMP) .typecheck/clampd
+	$(BIN)/mypy -p clampd.protocol -p clampd.daemon -p clampd.simulators
+	$(BIN)/mypy tests
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+demo: $(STAMP)
+	$(BIN)/clampd demo
+
+bench: $(STAMP)
+	$(BIN)/python -m pytest -p benchmark benchmarks --benchmark-only
+
+clean:
+	rm -rf $(VENV) .typecheck build *.egg-info .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -1,0 +1,1 @@
+"""The station daemon: the pure engine and planner, and the asyncio runtime around them."""

@@ -1,0 +1,5 @@
+import sys
+
+from clampd.daemon.cli import main
+
+sys.exit(main())

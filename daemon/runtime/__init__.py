@@ -1,0 +1,1 @@
+"""The asyncio runtime: BLE links, MQTT, the durable outbox, cues, configuration."""

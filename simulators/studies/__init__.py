@@ -1,0 +1,1 @@
+"""Seeded population studies: preload scatter, cue timing, angle accuracy."""
