@@ -1,0 +1,389 @@
+"""The durable outbox and journal on real SQLite files.
+
+Durability settings are checked against the SQLite documentation ("Write-Ahead Logging";
+"PRAGMA synchronous": FULL = 2; "PRAGMA max_page_count"; result code SQLITE_FULL = 13 in
+"Result and Error Codes").
+"""
+
+from __future__ import annotations
+
+import asyncio
+import datetime as dt
+import sqlite3
+import tempfile
+import uuid
+from pathlib import Path
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from clampd.daemon.runtime import (
+    AsyncOutbox,
+    Outbox,
+    OutboxConflictError,
+    OutboxDiskFullError,
+    OutboxError,
+    OutboxFullError,
+    OutboxInputError,
+    OutboxUnknownIdError,
+)
+from clampd.daemon.runtime._outbox import SCHEMA_VERSION
+
+DAY = 86_400.0
+
+
+def _id(n: int) -> str:
+    return str(uuid.UUID(int=n + 1))
+
+
+def _put(ob: Outbox, n: int, size: int = 100, **meta: str) -> bool:
+    return ob.put(_id(n), "plant/st1/result", bytes([n % 256]) * size, **meta)
+
+
+class _Clock:
+    def __init__(self, t: float = 1_800_000_000.0) -> None:
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_file_uses_wal_and_full_sync(tmp_path: Path) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        # synchronous is per connection: read it on the outbox's own connection.
+        assert ob._conn.execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL (SQLite docs)
+        _put(ob, 1)
+    other = sqlite3.connect(tmp_path / "o.db")
+    assert other.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert other.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+    other.close()
+
+
+def test_put_get_round_trip_with_journal_columns(tmp_path: Path) -> None:
+    finished = dt.datetime(2026, 3, 4, 5, 6, 7, 890_000, tzinfo=dt.UTC)
+    with Outbox(tmp_path / "o.db") as ob:
+        rid = str(uuid.uuid4())
+        assert ob.put(
+            rid.upper(),  # ids are stored in canonical lower-case form
+            "t/result",
+            b'{"status":"OK"}',
+            station="st1",
+            wrench="w1",
+            program="p-m8",
+            part_id="PX-1",
+            status="OK",
+            finished_at=finished,
+        )
+        entry = ob.get(rid)
+    assert entry is not None
+    assert (entry.id, entry.topic, entry.payload) == (rid, "t/result", b'{"status":"OK"}')
+    assert (entry.station, entry.wrench, entry.program, entry.part_id, entry.status) == (
+        "st1",
+        "w1",
+        "p-m8",
+        "PX-1",
+        "OK",
+    )
+    assert entry.finished_at == "2026-03-04T05:06:07.890+00:00"
+    assert not entry.sent
+
+
+def test_same_id_twice_is_a_no_op_and_different_content_is_refused(tmp_path: Path) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        assert _put(ob, 1) is True
+        assert _put(ob, 1) is False
+        with pytest.raises(OutboxConflictError) as info:
+            ob.put(_id(1), "plant/st1/result", b"different")
+        assert info.value.result_id == _id(1)
+        stored = ob.get(_id(1))
+        assert stored is not None
+        assert stored.payload == bytes([1]) * 100
+        assert ob.stats().total == 1
+
+
+@pytest.mark.parametrize("bad", ["", "not-a-uuid", "1234", "g" * 32])
+def test_bad_id_is_a_typed_error(tmp_path: Path, bad: str) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        with pytest.raises(OutboxInputError, match="not a UUID"):
+            ob.put(bad, "t", b"x")
+        assert ob.stats().total == 0
+
+
+def test_bad_topic_payload_and_naive_time_are_typed_errors(tmp_path: Path) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        with pytest.raises(OutboxInputError, match="topic"):
+            ob.put(_id(1), "", b"x")
+        with pytest.raises(OutboxInputError, match="bytes"):
+            ob.put(_id(1), "t", "text")  # type: ignore[arg-type]
+        with pytest.raises(OutboxInputError, match="timezone"):
+            ob.put(_id(1), "t", b"x", finished_at=dt.datetime(2026, 1, 1))
+        assert ob.stats().total == 0
+
+
+def test_pending_is_append_order_and_survives_reopen(tmp_path: Path) -> None:
+    path = tmp_path / "o.db"
+    with Outbox(path) as ob:
+        for n in range(10):
+            _put(ob, n)
+        ob.mark_sent(_id(3))
+        ob.mark_sent(_id(0))
+    with Outbox(path) as ob:
+        assert [e.id for e in ob.pending(100)] == [_id(n) for n in (1, 2, 4, 5, 6, 7, 8, 9)]
+        assert [e.id for e in ob.pending(2)] == [_id(1), _id(2)]
+        seqs = [e.seq for e in ob.iter_all()]
+        assert seqs == sorted(seqs)
+        assert len(set(seqs)) == 10
+
+
+def test_mark_sent_twice_and_unknown_id(tmp_path: Path) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        _put(ob, 1)
+        assert ob.mark_sent(_id(1)) is True
+        assert ob.mark_sent(_id(1)) is False
+        with pytest.raises(OutboxUnknownIdError, match="no result"):
+            ob.mark_sent(_id(99))
+
+
+def test_sequence_numbers_are_never_reused_after_deletion(tmp_path: Path) -> None:
+    # AUTOINCREMENT guarantees a new rowid above every one ever used (SQLite docs,
+    # "Autoincrement"), so a consumer ordering by seq never sees an older-looking number.
+    clock = _Clock()
+    with Outbox(tmp_path / "o.db", retention_days=1, clock=clock) as ob:
+        _put(ob, 1)
+        first = ob.get(_id(1))
+        assert first is not None
+        ob.mark_sent(_id(1))
+        clock.t += 2 * DAY
+        assert ob.prune() == 1
+        _put(ob, 2)
+        second = ob.get(_id(2))
+        assert second is not None
+        assert second.seq > first.seq
+
+
+def test_retention_deletes_only_old_sent_results(tmp_path: Path) -> None:
+    clock = _Clock()
+    with Outbox(tmp_path / "o.db", retention_days=30, clock=clock) as ob:
+        for n in range(6):
+            _put(ob, n)
+        ob.mark_sent(_id(0))  # sent 40 days before "now"
+        ob.mark_sent(_id(1))
+        clock.t += 10 * DAY
+        ob.mark_sent(_id(2))  # sent 30 days before "now": exactly at the edge, kept
+        clock.t += 30 * DAY
+        ob.mark_sent(_id(3))  # sent just now
+        assert ob.prune() == 2
+        remaining = {e.id for e in ob.iter_all()}
+    # Unsent 4 and 5 are 40 days old and still there: unsent is never deleted.
+    assert remaining == {_id(2), _id(3), _id(4), _id(5)}
+
+
+def test_size_cap_evicts_oldest_sent_first(tmp_path: Path) -> None:
+    cap = 256 * 1024
+    with Outbox(tmp_path / "o.db", size_cap_bytes=cap) as ob:
+        n = 0
+        while ob.stats().used_bytes < cap * 0.9:
+            _put(ob, n, size=4000)
+            ob.mark_sent(_id(n))
+            n += 1
+        for m in range(n, n + 40):  # these must evict sent rows to fit
+            _put(ob, m, size=4000)
+        stats = ob.stats()
+        ids = [e.id for e in ob.iter_all()]
+    assert stats.used_bytes <= cap
+    assert stats.unsent == 40
+    assert all(_id(m) in ids for m in range(n, n + 40))
+    # What survived of the sent rows is a contiguous run of the newest ones.
+    survivors = [i for i in range(n) if _id(i) in ids]
+    assert survivors == list(range(n - len(survivors), n))
+    assert len(survivors) < n
+
+
+def test_size_cap_refuses_new_results_rather_than_dropping_unsent(tmp_path: Path) -> None:
+    cap = 128 * 1024
+    path = tmp_path / "o.db"
+    stored: list[int] = []
+
+    def fill(ob: Outbox) -> None:
+        for n in range(1000):
+            _put(ob, n, size=4000)
+            stored.append(n)
+
+    with Outbox(path, size_cap_bytes=cap) as ob:
+        with pytest.raises(OutboxFullError) as info:
+            fill(ob)
+        assert not isinstance(info.value, OutboxDiskFullError)
+        assert info.value.unsent == len(stored)
+        assert info.value.cap_bytes == cap
+        assert ob.integrity_ok()
+        assert [e.id for e in ob.pending(10_000)] == [_id(n) for n in stored]
+        # Once some are acknowledged, their space is reused for new results.
+        for n in stored[:5]:
+            ob.mark_sent(_id(n))
+        assert _put(ob, 5000, size=4000)
+
+
+def test_disk_full_is_typed_rolls_back_and_corrupts_nothing(tmp_path: Path) -> None:
+    # A tiny filesystem is not available here; SQLite's max_page_count makes the file
+    # report SQLITE_FULL exactly as a full disk does (SQLite docs, "PRAGMA max_page_count").
+    path = tmp_path / "o.db"
+    stored: list[int] = []
+
+    def fill(ob: Outbox) -> None:
+        for n in range(10_000):
+            _put(ob, n, size=3000)
+            stored.append(n)
+
+    with Outbox(path, max_page_count=40) as ob:
+        with pytest.raises(OutboxDiskFullError) as info:
+            fill(ob)
+        assert isinstance(info.value, OutboxFullError)
+        assert isinstance(info.value.__cause__, sqlite3.OperationalError)
+        assert info.value.__cause__.sqlite_errorcode == sqlite3.SQLITE_FULL
+        assert info.value.unsent == len(stored)
+        assert stored  # some fitted before the limit
+        assert ob.integrity_ok()
+        # mark_sent still works (it changes no size) and so does reading.
+        assert ob.mark_sent(_id(stored[0]))
+    raw = sqlite3.connect(path)
+    assert raw.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
+    raw.close()
+    with Outbox(path) as ob:  # with room again, nothing was lost and writing resumes
+        assert [e.id for e in ob.iter_all()] == [_id(n) for n in stored]
+        assert _put(ob, 10_001)
+
+
+def test_file_from_a_newer_clampd_is_refused_untouched(tmp_path: Path) -> None:
+    path = tmp_path / "o.db"
+    raw = sqlite3.connect(path)
+    raw.execute("CREATE TABLE future (x)")
+    raw.execute("PRAGMA user_version = 99")
+    raw.commit()
+    raw.close()
+    with pytest.raises(OutboxError, match="newer"):
+        Outbox(path)
+    raw = sqlite3.connect(path)
+    assert raw.execute("PRAGMA user_version").fetchone()[0] == 99
+    raw.close()
+
+
+def test_list_filters_for_the_journal(tmp_path: Path) -> None:
+    with Outbox(tmp_path / "o.db") as ob:
+        for n in range(12):
+            _put(
+                ob,
+                n,
+                wrench=f"w{n % 2}",
+                status="OK" if n % 3 else "NOK",
+                part_id=f"P{n // 4}",
+                finished_at=f"2026-03-01T10:{n:02d}:00.000+00:00",
+            )
+        ob.mark_sent(_id(1))
+        newest = ob.list(limit=3)
+        assert [e.id for e in newest] == [_id(11), _id(10), _id(9)]
+        assert {e.id for e in ob.list(wrench="w1", status="NOK")} == {_id(3), _id(9)}
+        assert [e.id for e in ob.list(part_id="P0", newest_first=False)] == [
+            _id(n) for n in range(4)
+        ]
+        assert _id(1) not in {e.id for e in ob.list(unsent_only=True)}
+        window = ob.list(finished_from="2026-03-01T10:05", finished_to="2026-03-01T10:07")
+        assert {e.id for e in window} == {_id(5), _id(6)}
+
+
+_op = st.one_of(
+    st.tuples(st.just("put"), st.integers(0, 30)),
+    st.tuples(st.just("ack"), st.integers(0, 30)),
+)
+
+
+@settings(max_examples=40, deadline=None)
+@given(ops=st.lists(_op, max_size=60))
+def test_pending_matches_a_simple_model(ops: list[tuple[str, int]]) -> None:
+    # Model: an insertion-ordered dict of id -> sent. The outbox must agree after any
+    # interleaving of puts (new or repeated) and acknowledgements.
+    model: dict[str, bool] = {}
+    with tempfile.TemporaryDirectory() as d, Outbox(Path(d) / "o.db") as ob:
+        for op, n in ops:
+            if op == "put":
+                assert _put(ob, n) is (_id(n) not in model)
+                model.setdefault(_id(n), False)
+            elif _id(n) in model:
+                assert ob.mark_sent(_id(n)) is (not model[_id(n)])
+                model[_id(n)] = True
+            else:
+                with pytest.raises(OutboxUnknownIdError):
+                    ob.mark_sent(_id(n))
+        assert [e.id for e in ob.pending(1000)] == [k for k, sent in model.items() if not sent]
+        assert ob.stats().unsent == sum(not s for s in model.values())
+
+
+# -- the asyncio wrapper ------------------------------------------------------------------
+
+
+async def test_async_outbox_round_trip_under_blockbuster(
+    tmp_path: Path, blockbuster: object
+) -> None:
+    async with AsyncOutbox(tmp_path / "o.db") as ob:
+        assert await ob.put(_id(1), "t", b"a", status="OK")
+        assert await ob.put(_id(2), "t", b"b", status="NOK")
+        assert not await ob.put(_id(1), "t", b"a")
+        assert [e.id for e in await ob.pending(10)] == [_id(1), _id(2)]
+        assert await ob.mark_sent(_id(1))
+        assert [e.id for e in await ob.list(status="NOK")] == [_id(2)]
+        got = await ob.get(_id(1))
+        assert got is not None
+        assert got.sent
+        assert (await ob.stats()).unsent == 1
+        assert await ob.integrity_ok()
+        with pytest.raises(OutboxInputError):
+            await ob.put("nope", "t", b"x")
+
+
+async def test_connection_lives_on_the_worker_thread_not_the_loop(tmp_path: Path) -> None:
+    # sqlite3 connections refuse use from any thread but their own (check_same_thread),
+    # so this proves every call that succeeded above ran on the worker thread.
+    async with AsyncOutbox(tmp_path / "o.db") as ob:
+        await ob.put(_id(1), "t", b"a")
+        with pytest.raises(sqlite3.ProgrammingError, match="thread"):
+            ob._core().pending(1)
+
+
+async def test_a_put_stuck_on_the_disk_does_not_stall_the_loop(tmp_path: Path) -> None:
+    path = tmp_path / "o.db"
+    async with AsyncOutbox(path) as ob:
+        # Another process-like writer holds the write lock: the put must wait for it.
+        blocker = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+        blocker.execute("BEGIN IMMEDIATE")
+        put = asyncio.create_task(ob.put(_id(1), "t", b"a"))
+        ticks = 0
+        for _ in range(200):
+            await asyncio.sleep(0)
+            ticks += 1
+        assert ticks == 200
+        assert not put.done()  # the loop kept running while the put waited
+        blocker.execute("COMMIT")
+        blocker.close()
+        assert await put is True
+
+
+async def test_wait_pending_wakes_on_put_and_returns_at_once_when_backlog(
+    tmp_path: Path,
+) -> None:
+    path = tmp_path / "o.db"
+    async with AsyncOutbox(path) as ob:
+        waiter = asyncio.create_task(ob.wait_pending())
+        for _ in range(20):
+            await asyncio.sleep(0)
+        assert not waiter.done()
+        await ob.put(_id(1), "t", b"a")
+        await asyncio.wait_for(waiter, timeout=10)
+    async with AsyncOutbox(path) as ob:  # after a restart the backlog is announced at once
+        await asyncio.wait_for(ob.wait_pending(), timeout=10)
+        assert [e.id for e in await ob.pending()] == [_id(1)]
+
+
+async def test_async_outbox_outside_its_block_is_an_error(tmp_path: Path) -> None:
+    ob = AsyncOutbox(tmp_path / "o.db")
+    with pytest.raises(OutboxError, match="async with"):
+        await ob.pending()
