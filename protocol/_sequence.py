@@ -165,7 +165,7 @@ class ClockPlacement:
     @property
     def start_s(self) -> float:
         """Continuous time of the first sample, seconds."""
-        return self.start_us * 1e-6
+        return self.start_us / 1e6
 
     @property
     def end_us(self) -> int:
@@ -175,7 +175,7 @@ class ClockPlacement:
     def times_s(self) -> NDArray[np.float64]:
         """Continuous time of every sample, seconds, computed from exact integers."""
         ticks = self.start_us + self.period_us * np.arange(self.count, dtype=np.int64)
-        return ticks.astype(np.float64) * 1e-6
+        return ticks.astype(np.float64) / 1e6
 
 
 class SampleClock:
@@ -212,7 +212,7 @@ class SampleClock:
                 # A restart: the sensor's time says nothing about the pause, so the samples
                 # continue right after the previous ones (PROFILE.md, CLOCK_RESET).
                 start = self._next_start + self._last_period
-                events.append(ClockReset(t_s=start * 1e-6, flagged=clock_reset))
+                events.append(ClockReset(t_s=start / 1e6, flagged=clock_reset))
             else:
                 start = candidate
                 delta = start - self._next_start
@@ -222,18 +222,18 @@ class SampleClock:
                 if delta >= half:
                     events.append(
                         TimeGap(
-                            expected_t_s=self._next_start * 1e-6,
-                            received_t_s=start * 1e-6,
-                            gap_s=delta * 1e-6,
+                            expected_t_s=self._next_start / 1e6,
+                            received_t_s=start / 1e6,
+                            gap_s=delta / 1e6,
                             missing_samples=round(delta / self._last_period),
                         )
                     )
                 elif -delta >= half:
                     events.append(
                         TimeOverlap(
-                            expected_t_s=self._next_start * 1e-6,
-                            received_t_s=start * 1e-6,
-                            overlap_s=-delta * 1e-6,
+                            expected_t_s=self._next_start / 1e6,
+                            received_t_s=start / 1e6,
+                            overlap_s=-delta / 1e6,
                         )
                     )
         placement = ClockPlacement(
