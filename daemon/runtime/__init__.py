@@ -1,6 +1,25 @@
 """The asyncio runtime: BLE links, MQTT, the durable outbox, cues, configuration."""
 
 from clampd.daemon.runtime._backoff import next_delay
+from clampd.daemon.runtime._config import (
+    BrokerConfig,
+    CalibrationState,
+    ConfigError,
+    ConfigProblem,
+    CuesConfig,
+    JournalConfig,
+    LoadedConfig,
+    OutboxConfig,
+    PlaintextRemoteError,
+    StationConfig,
+    StationSection,
+    WrenchConfig,
+    apply_env_overrides,
+    calibration_state,
+    check_broker_transport,
+    load_config,
+    parse_config,
+)
 from clampd.daemon.runtime._outbox import (
     AsyncOutbox,
     Entry,
@@ -16,8 +35,16 @@ from clampd.daemon.runtime._outbox import (
 
 __all__ = [
     "AsyncOutbox",
+    "BrokerConfig",
+    "CalibrationState",
+    "ConfigError",
+    "ConfigProblem",
+    "CuesConfig",
     "Entry",
+    "JournalConfig",
+    "LoadedConfig",
     "Outbox",
+    "OutboxConfig",
     "OutboxConflictError",
     "OutboxDiskFullError",
     "OutboxError",
@@ -25,5 +52,14 @@ __all__ = [
     "OutboxInputError",
     "OutboxStats",
     "OutboxUnknownIdError",
+    "PlaintextRemoteError",
+    "StationConfig",
+    "StationSection",
+    "WrenchConfig",
+    "apply_env_overrides",
+    "calibration_state",
+    "check_broker_transport",
+    "load_config",
     "next_delay",
+    "parse_config",
 ]
