@@ -1,0 +1,935 @@
+"""The rundown engine: a sans-I/O state machine per wrench, fed samples, returning events.
+
+Theory of operation
+-------------------
+Input is a frame of samples (sensor time ``t_s``, torque ``torque_nm``, rate about the fastener
+axis ``rate_dps``, positive when tightening) or a single sample. The engine never reads a clock:
+time is the sensor's timestamps, and timeouts arrive as ``tick(t_s)``.
+
+Per frame the work is split in two passes, so that numpy does the bulk and every event still
+lands on the exact sample where its condition first holds:
+
+1. *Accumulate* (state-independent within a rundown): gyro bias removal, which samples turn the
+   fastener (ratchet logic below), snug, the angle from snug by the trapezoid rule on the
+   sensor's own timestamps, and running sums (n, Σθ, ΣT, Σθ², ΣθT, ΣT²) of the turning samples
+   after snug, from which any least-squares slope over an angle window is an O(1) difference.
+2. *Decide*: for the current state, vectorised masks of every condition that can change
+   something (snug, a step target, cues, yield, over-torque, data gap, release, timeout) over
+   the rest of the frame; the earliest sample wins, its one event is applied (the transition
+   itself is decided by ``_machine.next_state``), and the scan resumes *at that same sample* in
+   the new state, so a sample that satisfies several conditions yields all of them in a fixed
+   order. When the rundown finishes, the history is cut at that sample and the rest of the frame
+   is processed afresh as idle input.
+
+Every quantity is an elementwise operation or a sequential running sum/maximum seeded with the
+carried state (``np.cumsum`` and ``ufunc.accumulate`` add in order), so feeding one sample at a
+time or a whole frame yields bit-identical values, events and indices.
+
+Angle counting (ratchet wrenches)
+---------------------------------
+A sample turns the fastener while the bias-corrected rate is positive; a stroke ends when the
+rate falls to 0 or below (the back-stroke), and the level where it ended is its peak torque.
+A new stroke counts only from the first sample where the rate is positive *and* torque is back
+to ``resume_fraction`` of that level — before it, the wrench is winding up (ratchet slack,
+socket and wrench deflection) while the fastener stands still. Each counted increment is the
+trapezoid of the corrected rate minus the wrench's own deflection (deg per N·m × ΔT), clamped
+at zero, so the counted angle never decreases.
+
+Yield (gradient)
+----------------
+The slope dT/dθ is the least-squares fit over the trailing ``slope_window_deg`` of turning
+samples after snug, valid once the window lies wholly past snug. Its running maximum stands for
+the linear region; yield holds at the first turning sample past ``yield_min_angle`` where the
+slope is at or below ``yield_fraction`` × that maximum. A trailing window reports the average
+slope over its span, so on a smooth knee the detection lags the true crossing by roughly half
+the window.
+
+Cueing
+------
+The value driven to target (torque, or angle since the step began) is extrapolated linearly
+with its rate over the trailing ``cue_rate_window_s``. The stop cue fires at the first sample
+where the value predicted at now + cue latency + reaction time reaches the target; the approach
+cue likewise with ``approach_lead_s`` more. A cue never fires later than the crossing itself.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from clampd.daemon.engine._errors import EngineUsageError, SensorDataError
+from clampd.daemon.engine._events import (
+    CueFired,
+    CueKind,
+    CueRecord,
+    EngineFault,
+    Event,
+    OverTorque,
+    Reason,
+    RundownFinished,
+    RundownResult,
+    RundownStarted,
+    SnugPoint,
+    SnugReached,
+    Status,
+    StopPoint,
+    StopReached,
+    StopTrigger,
+    YieldDetected,
+    YieldPoint,
+)
+from clampd.daemon.engine._machine import Input, State, next_state
+from clampd.daemon.engine._program import Program, StepKind, Strategy
+from clampd.daemon.engine._settings import EngineSettings
+
+__all__ = ["Engine"]
+
+FloatArray = npt.NDArray[np.float64]
+BoolArray = npt.NDArray[np.bool_]
+ArrayLike = float | FloatArray | npt.ArrayLike
+
+# Initial capacity of a rundown's history, grown by doubling: 8192 samples is 8 s at 1 kHz.
+_INITIAL_CAPACITY = 8192
+# Samples kept while idle for the gyro bias estimate: 1 s at the profile's 10 kHz ceiling.
+_REST_CAPACITY = 16384
+# Least-squares fits need at least this many points (2 define a line, 3 say something about it).
+_MIN_FIT_POINTS = 3
+
+_TORQUE, _ANGLE, _YIELD = "torque", "angle", "yield"
+
+
+@dataclass(frozen=True, slots=True)
+class _StepSpec:
+    kind: str  # _TORQUE | _ANGLE | _YIELD
+    target: float  # N·m for torque, deg since the step began for angle, unused for yield
+    trigger: StopTrigger
+
+
+def _compile_steps(p: Program) -> tuple[_StepSpec, ...]:
+    match p.strategy:
+        case Strategy.TORQUE:
+            assert p.target_torque_nm is not None
+            return (_StepSpec(_TORQUE, p.target_torque_nm, StopTrigger.TARGET_TORQUE),)
+        case Strategy.TORQUE_ANGLE | Strategy.TORQUE_TO_YIELD:
+            assert p.target_angle_deg is not None
+            return (_StepSpec(_ANGLE, p.target_angle_deg, StopTrigger.TARGET_ANGLE),)
+        case Strategy.YIELD:
+            return (_StepSpec(_YIELD, math.nan, StopTrigger.YIELD),)
+        case Strategy.MULTI_STEP:
+            out = []
+            for s in p.steps:
+                if s.kind is StepKind.TORQUE:
+                    assert s.target_torque_nm is not None
+                    out.append(_StepSpec(_TORQUE, s.target_torque_nm, StopTrigger.TARGET_TORQUE))
+                else:
+                    assert s.target_angle_deg is not None
+                    out.append(_StepSpec(_ANGLE, s.target_angle_deg, StopTrigger.TARGET_ANGLE))
+            return tuple(out)
+
+
+class _Params:
+    """Program and settings folded into the numbers the scan needs (fixed during a rundown)."""
+
+    def __init__(self, p: Program, s: EngineSettings) -> None:
+        self.steps = _compile_steps(p)
+        self.snug = p.snug_torque_nm
+        self.max_torque = math.inf if p.max_torque_nm is None else p.max_torque_nm
+        self.release = s.start_torque_nm if p.release_torque_nm is None else p.release_torque_nm
+        self.timeout = s.timeout_s if p.timeout_s is None else p.timeout_s
+        latency = s.cue_latency_s if p.cue_latency_s is None else p.cue_latency_s
+        reaction = s.reaction_time_s if p.reaction_time_s is None else p.reaction_time_s
+        lead = s.approach_lead_s if p.approach_lead_s is None else p.approach_lead_s
+        self.h_stop = latency + reaction
+        self.h_approach = self.h_stop + lead
+        self.window = p.slope_window_deg
+        self.min_angle = p.yield_min_angle
+        self.fraction = p.yield_fraction
+        self.approach_fraction = 0.5 * (1.0 + p.yield_fraction)  # yield approach: halfway there
+        self.watch_yield = p.monitor_yield or p.strategy in (
+            Strategy.YIELD,
+            Strategy.TORQUE_TO_YIELD,
+        )
+        self.needs_yield = p.strategy in (Strategy.YIELD, Strategy.TORQUE_TO_YIELD)
+        self.torque_window = p.torque_window_nm
+        self.angle_window = p.angle_window_deg
+        self.defl = s.deflection_deg_per_nm
+        self.resume = s.resume_fraction
+        self.max_gap = s.max_gap_s
+        self.cue_window = s.cue_rate_window_s
+
+
+class _Rundown:
+    """Everything one rundown carries; local indices count from its first sample."""
+
+    def __init__(self, start_index: int, bias: float, t0: float, T0: float) -> None:
+        cap = _INITIAL_CAPACITY
+        self.start_index = start_index
+        self.bias = bias
+        self.t0, self.T0 = t0, T0
+        self.t: FloatArray = np.empty(cap)
+        self.T: FloatArray = np.empty(cap)
+        self.th: FloatArray = np.empty(cap)
+        self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
+        self.P: FloatArray = np.zeros((cap + 1, 6))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT, ΣT²
+        self.n = 0
+        # accumulation state
+        self.turning = False
+        self.stroke_peak = 0.0
+        self.resume_level = 0.0
+        self.stroke_starts: list[int] = []
+        self.prev_t = self.prev_T = self.prev_rc = math.nan
+        self.snug: int | None = None
+        self.theta_last = 0.0
+        self.last_active_t = t0
+        # decision state
+        self.step = 0
+        self.step_base = 0.0
+        self.fired: set[tuple[CueKind, int]] = set()
+        self.cues: list[CueRecord] = []
+        self.stop: StopPoint | None = None
+        self.yield_point: YieldPoint | None = None
+        self.slope_max = -math.inf
+        self.over = False
+        self.reasons: list[Reason] = []
+
+    def reserve(self, n: int) -> None:
+        cap = self.t.shape[0]
+        if n <= cap:
+            return
+        while cap < n:
+            cap *= 2
+        for name in ("t", "T", "th", "turn"):
+            old = getattr(self, name)
+            new = np.empty(cap, dtype=old.dtype)
+            new[: self.n] = old[: self.n]
+            setattr(self, name, new)
+        P = np.zeros((cap + 1, 6))
+        P[: self.n + 1] = self.P[: self.n + 1]
+        self.P = P
+
+
+def _first(mask: BoolArray) -> int:
+    """Index of the first True, or len(mask) when there is none."""
+    if mask.shape[0] == 0:
+        return 0
+    k = int(mask.argmax())
+    return k if mask[k] else mask.shape[0]
+
+
+def _as_array(x: ArrayLike, name: str) -> FloatArray:
+    try:
+        a = np.asarray(x, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise SensorDataError(f"{name}: not numbers ({exc})", field=name) from None
+    if a.ndim == 0:
+        return a.reshape(1)
+    if a.ndim != 1:
+        raise SensorDataError(
+            f"{name}: expected one sample or a 1-D frame, got shape {a.shape}", field=name
+        )
+    return a
+
+
+class Engine:
+    """One wrench's tightening engine. Pure: no clock, no I/O, no logging.
+
+    ``feed`` accepts one frame (three 1-D arrays of equal length) or one sample (three floats)
+    and returns the events it caused, in order. Sample indices count from 0 since the Engine
+    was created. Bad samples raise ``SensorDataError`` and leave the engine untouched; misuse
+    raises ``EngineUsageError``. An internal error ends the rundown in progress NOK
+    (``engine_error``) with an ``EngineFault`` event; it is never swallowed silently.
+    """
+
+    def __init__(self, program: Program, settings: EngineSettings | None = None) -> None:
+        self._settings = settings if settings is not None else EngineSettings()
+        self._program = program
+        self._p = _Params(program, self._settings)
+        self._state = State.IDLE
+        self._seen = 0
+        self._last_t = -math.inf
+        self._armed = True
+        self._r: _Rundown | None = None
+        self._rest_t: FloatArray = np.empty(0)
+        self._rest_T: FloatArray = np.empty(0)
+        self._rest_r: FloatArray = np.empty(0)
+
+    # ----------------------------------------------------------------- read-only surface
+    @property
+    def state(self) -> State:
+        """Where the current rundown stands (IDLE between rundowns)."""
+        return self._state
+
+    @property
+    def program(self) -> Program:
+        """The program the next (or current) rundown runs."""
+        return self._program
+
+    @property
+    def settings(self) -> EngineSettings:
+        """This wrench's settings."""
+        return self._settings
+
+    @property
+    def samples_seen(self) -> int:
+        """Samples accepted since the Engine was created (the next sample's index)."""
+        return self._seen
+
+    # ----------------------------------------------------------------- inputs
+    def select_program(self, program: Program) -> None:
+        """Run ``program`` from the next rundown on; only between rundowns (else
+        ``EngineUsageError`` naming the state and the input)."""
+        self._state = next_state(self._state, Input.SELECT_PROGRAM)
+        self._program = program
+        self._p = _Params(program, self._settings)
+
+    def feed(self, t_s: ArrayLike, torque_nm: ArrayLike, rate_dps: ArrayLike) -> list[Event]:
+        """Consume one frame or one sample; return the events it caused."""
+        t = _as_array(t_s, "t_s")
+        T = _as_array(torque_nm, "torque_nm")
+        r = _as_array(rate_dps, "rate_dps")
+        if not t.shape == T.shape == r.shape:
+            raise SensorDataError(
+                f"frame columns differ in length: t_s {t.shape[0]}, torque_nm {T.shape[0]}, "
+                f"rate_dps {r.shape[0]}"
+            )
+        m = t.shape[0]
+        if m == 0:
+            return []
+        for name, a in (("t_s", t), ("torque_nm", T), ("rate_dps", r)):
+            ok = np.isfinite(a)
+            if not ok.all():
+                k = _first(~ok)
+                raise SensorDataError(
+                    f"{name} at sample {self._seen + k} is not finite ({a[k]!r})",
+                    index=self._seen + k,
+                    field=name,
+                )
+        if not t[0] > self._last_t:
+            raise SensorDataError(
+                f"t_s at sample {self._seen} ({t[0]!r}) does not follow the previous sample "
+                f"({self._last_t!r}); time must increase",
+                index=self._seen,
+                field="t_s",
+            )
+        if m > 1:
+            inc = t[1:] > t[:-1]
+            if not inc.all():
+                k = _first(~inc) + 1
+                raise SensorDataError(
+                    f"t_s at sample {self._seen + k} ({t[k]!r}) does not increase",
+                    index=self._seen + k,
+                    field="t_s",
+                )
+        events: list[Event] = []
+        try:
+            self._process(t, T, r, events)
+        except EngineUsageError:
+            raise
+        except Exception as exc:  # poison: an internal error must end the rundown NOK
+            self._poison(f"{type(exc).__name__}: {exc}", float(t[-1]), events)
+        self._seen += m
+        self._last_t = float(t[-1])
+        return events
+
+    def tick(self, t_s: float) -> list[Event]:
+        """Time passed without samples (sensor time base): end a rundown that timed out."""
+        t = self._check_time(t_s, "tick")
+        R = self._r
+        if R is None or R.n == 0 or t - R.last_active_t <= self._p.timeout:
+            return []
+        events: list[Event] = []
+        self._finish_now(Input.TIMEOUT, Reason.TIMEOUT, events)
+        return events
+
+    def link_lost(self, t_s: float) -> list[Event]:
+        """The wrench's link dropped: a rundown in progress ends NOK (link_lost), partial curve
+        kept. Idle: nothing happens."""
+        self._check_time(t_s, "link_lost")
+        events: list[Event] = []
+        if self._r is not None:
+            self._finish_now(Input.LINK_LOST, Reason.LINK_LOST, events)
+        else:
+            self._state = next_state(self._state, Input.LINK_LOST)
+        return events
+
+    def abort(self, t_s: float) -> list[Event]:
+        """Abort the rundown in progress (NOK aborted). Idle: nothing happens."""
+        self._check_time(t_s, "abort")
+        events: list[Event] = []
+        if self._r is not None:
+            self._finish_now(Input.ABORT, Reason.ABORTED, events)
+        else:
+            self._state = next_state(self._state, Input.ABORT)
+        return events
+
+    # ----------------------------------------------------------------- internals
+    def _check_time(self, t_s: float, what: str) -> float:
+        if isinstance(t_s, bool) or not isinstance(t_s, int | float) or not math.isfinite(t_s):
+            raise EngineUsageError(
+                f"{what}: t_s must be a finite number, got {t_s!r}",
+                state=self._state.value,
+                input=what,
+            )
+        return float(t_s)
+
+    def _finish_now(self, inp: Input, reason: Reason, events: list[Event]) -> None:
+        R = self._r
+        assert R is not None
+        R.reasons.append(reason)
+        self._finish(R.n - 1, inp, events)
+
+    def _poison(self, message: str, t_last: float, events: list[Event]) -> None:
+        R = self._r
+        if R is None or R.n == 0:
+            idx = max(self._seen - 1, 0) if R is None else R.start_index
+            events.append(EngineFault(index=idx, t_s=t_last, message=message))
+            self._r = None
+            self._state = State.IDLE
+            self._armed = False
+            return
+        idx = R.start_index + R.n - 1
+        events.append(EngineFault(index=idx, t_s=float(R.t[R.n - 1]), message=message))
+        R.reasons.append(Reason.ENGINE_ERROR)
+        try:
+            self._finish(R.n - 1, Input.ENGINE_ERROR, events)
+        except Exception:  # the rundown's own data is unusable: report it minimal, still NOK
+            self._state = next_state(self._state, Input.ENGINE_ERROR)
+            self._r = None
+            self._armed = False
+            res = RundownResult(
+                status=Status.NOK,
+                reasons=(Reason.ENGINE_ERROR,),
+                strategy=self._program.strategy.value,
+                program_id=self._program.id,
+                program_version=self._program.version,
+                start_index=R.start_index,
+                start_t_s=R.t0,
+                end_index=R.start_index,
+                end_t_s=R.t0,
+                gyro_bias_dps=R.bias,
+                snug=None,
+                stop=None,
+                cues=(),
+                final_torque_nm=R.T0,
+                final_angle_deg=0.0,
+                peak_torque_nm=R.T0,
+                yield_point=None,
+                joint_rate_nm_per_deg=None,
+                joint_rate_r2=None,
+                curve_t_s=np.array([R.t0]),
+                curve_torque_nm=np.array([R.T0]),
+                curve_angle_deg=np.array([0.0]),
+            )
+            events.append(RundownFinished(index=R.start_index, t_s=R.t0, result=res))
+
+    def _process(self, t: FloatArray, T: FloatArray, r: FloatArray, events: list[Event]) -> None:
+        i = 0
+        m = t.shape[0]
+        while i < m:
+            if self._r is None:
+                j = self._idle(t[i:], T[i:], r[i:])
+                if j is None:
+                    return
+                i += j
+                self._start(self._seen + i, float(t[i]), float(T[i]), events)
+            i += self._active(t[i:], T[i:], r[i:], events)
+
+    def _idle(self, t: FloatArray, T: FloatArray, r: FloatArray) -> int | None:
+        """Keep idle samples for the bias estimate; return where a rundown starts, if it does."""
+        m = t.shape[0]
+        start = self._settings.start_torque_nm
+        pos = 0
+        if not self._armed:
+            pos = _first(start > T)
+            if pos == m:
+                self._keep_rest(t, T, r)
+                return None
+            self._armed = True
+        k = pos + _first(T[pos:] >= start)
+        self._keep_rest(t[:k], T[:k], r[:k])
+        return None if k == m else k
+
+    def _keep_rest(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
+        if t.shape[0] == 0:
+            return
+        self._rest_t = np.concatenate((self._rest_t, t))[-_REST_CAPACITY:]
+        self._rest_T = np.concatenate((self._rest_T, T))[-_REST_CAPACITY:]
+        self._rest_r = np.concatenate((self._rest_r, r))[-_REST_CAPACITY:]
+
+    def _start(self, index: int, t0: float, T0: float, events: list[Event]) -> None:
+        s = self._settings
+        sel = (
+            (self._rest_t >= t0 - s.bias_window_s)
+            & (np.abs(self._rest_r) < s.rest_rate_dps)
+            & (np.abs(self._rest_T) < s.rest_torque_nm)
+        )
+        count = int(sel.sum())
+        bias = float(np.mean(self._rest_r[sel])) if count >= s.bias_min_samples else 0.0
+        self._rest_t = self._rest_T = self._rest_r = np.empty(0)
+        self._state = next_state(self._state, Input.START)
+        self._r = _Rundown(index, bias, t0, T0)
+        events.append(
+            RundownStarted(
+                index=index, t_s=t0, torque_nm=T0, gyro_bias_dps=bias, program_id=self._program.id
+            )
+        )
+
+    # ---- pass 1: accumulate
+    def _turning(self, R: _Rundown, rc: FloatArray, T: FloatArray, n0: int) -> BoolArray:
+        m = rc.shape[0]
+        out = np.empty(m, dtype=np.bool_)
+        p = 0
+        while p < m:
+            if R.turning:
+                j = p + _first(rc[p:] <= 0.0)
+                out[p:j] = True
+                if j > p:
+                    R.stroke_peak = max(R.stroke_peak, float(T[p:j].max()))
+                if j == m:
+                    break
+                R.turning = False
+                R.resume_level = R.stroke_peak
+                p = j
+            else:
+                level = self._p.resume * R.resume_level
+                j = p + _first((rc[p:] > 0.0) & (T[p:] >= level))
+                out[p:j] = False
+                if j == m:
+                    break
+                R.turning = True
+                R.stroke_peak = float(T[j])
+                R.stroke_starts.append(n0 + j)
+                p = j
+        return out
+
+    def _accumulate(
+        self, R: _Rundown, t: FloatArray, T: FloatArray, r: FloatArray
+    ) -> tuple[FloatArray, FloatArray]:
+        P_ = self._p
+        m = t.shape[0]
+        n0 = R.n
+        R.reserve(n0 + m)
+        rc = r - R.bias
+        if n0 == 0:
+            R.prev_t, R.prev_T, R.prev_rc = float(t[0]), float(T[0]), float(rc[0])
+        tp = np.empty(m)
+        tp[0] = R.prev_t
+        tp[1:] = t[:-1]
+        dt = t - tp
+        turn = self._turning(R, rc, T, n0)
+        if R.snug is None:
+            k = _first(P_.snug <= T)
+            if k < m:
+                R.snug = n0 + k
+        R.t[n0 : n0 + m] = t
+        R.T[n0 : n0 + m] = T
+        R.turn[n0 : n0 + m] = turn
+        if R.snug is None or R.snug >= n0 + m:
+            R.th[n0 : n0 + m] = 0.0
+            R.P[n0 + 1 : n0 + m + 1] = R.P[n0]
+        else:
+            s = R.snug - n0  # may be negative: snug in an earlier frame
+            rcp = np.empty(m)
+            rcp[0] = R.prev_rc
+            rcp[1:] = rc[:-1]
+            trap = 0.5 * (rcp + rc) * dt
+            if P_.defl != 0.0:
+                Tp = np.empty(m)
+                Tp[0] = R.prev_T
+                Tp[1:] = T[:-1]
+                trap = trap - P_.defl * (T - Tp)
+            inc = np.where(turn, np.maximum(trap, 0.0), 0.0)
+            w = turn.astype(np.float64)
+            if s >= 0:
+                inc[: s + 1] = 0.0  # angle is 0 at snug and counts from the next sample
+                w[:s] = 0.0
+            acc = np.empty(m + 1)
+            acc[0] = R.theta_last
+            acc[1:] = inc
+            th = np.cumsum(acc)[1:]
+            R.th[n0 : n0 + m] = th
+            vals = np.empty((m + 1, 6))
+            vals[0] = R.P[n0]
+            wth = w * th
+            wT = w * T
+            vals[1:, 0] = w
+            vals[1:, 1] = wth
+            vals[1:, 2] = wT
+            vals[1:, 3] = wth * th
+            vals[1:, 4] = wth * T
+            vals[1:, 5] = wT * T
+            R.P[n0 + 1 : n0 + m + 1] = np.cumsum(vals, axis=0)[1:]
+            R.theta_last = float(th[-1])
+        R.prev_t, R.prev_T, R.prev_rc = float(t[-1]), float(T[-1]), float(rc[-1])
+        la_in = np.empty(m + 1)
+        la_in[0] = R.last_active_t
+        la_in[1:] = np.where(P_.release <= T, t, -np.inf)
+        la = np.maximum.accumulate(la_in)[1:]
+        R.last_active_t = float(la[-1])
+        R.n = n0 + m
+        return dt, la
+
+    # ---- pass 2: decide
+    def _slopes(
+        self, R: _Rundown, n0: int, p: int, m: int
+    ) -> tuple[FloatArray, FloatArray, BoolArray]:
+        """Windowed LS slope, its running max (seeded), and validity, for chunk[p:m]."""
+        P_ = self._p
+        idx = np.arange(n0 + p, n0 + m)
+        th = R.th[n0 + p : n0 + m]
+        lo = np.searchsorted(R.th[: n0 + m], th - P_.window, side="left")
+        S = R.P[idx + 1] - R.P[lo]
+        n, sx, sy, sxx, sxy = S[:, 0], S[:, 1], S[:, 2], S[:, 3], S[:, 4]
+        den = n * sxx - sx * sx
+        valid = R.turn[n0 + p : n0 + m] & (th >= P_.window) & (n >= _MIN_FIT_POINTS) & (den > 0.0)
+        slope = np.full(m - p, np.nan)
+        np.divide(n * sxy - sx * sy, den, out=slope, where=valid)
+        seed = np.empty(m - p + 1)
+        seed[0] = R.slope_max
+        seed[1:] = np.where(valid, slope, -np.inf)
+        M = np.maximum.accumulate(seed)[1:]
+        return slope, M, valid
+
+    def _cue_masks(
+        self, R: _Rundown, *, spec: _StepSpec, n0: int, p: int, m: int, t: FloatArray
+    ) -> tuple[FloatArray, FloatArray, FloatArray]:
+        """(value, rate, time) of the driven quantity over chunk[p:m] for prediction."""
+        P_ = self._p
+        tc = t[p:m]
+        j = np.searchsorted(R.t[: n0 + m], tc - P_.cue_window, side="right") - 1
+        j = np.maximum(j, 0)
+        if spec.kind == _TORQUE:
+            v = R.T[n0 + p : n0 + m]
+            vj = R.T[j]
+        else:
+            v = R.th[n0 + p : n0 + m] - R.step_base
+            vj = R.th[j] - R.step_base
+        dtj = tc - R.t[j]
+        rate = np.zeros(m - p)
+        np.divide(v - vj, dtj, out=rate, where=dtj > 0.0)
+        np.maximum(rate, 0.0, out=rate)
+        return v, rate, tc
+
+    def _active(self, t: FloatArray, T: FloatArray, r: FloatArray, events: list[Event]) -> int:
+        R = self._r
+        assert R is not None
+        P_ = self._p
+        n0 = R.n
+        m = t.shape[0]
+        dt, la = self._accumulate(R, t, T, r)
+        base = R.start_index + n0  # global index of chunk position 0
+        p = 0
+        while p < m:
+            state = self._state
+            K = m
+            what = ""
+            spec = P_.steps[R.step] if R.step < len(P_.steps) else None
+            slope = M = None
+            valid = None
+
+            def take(k: int, name: str) -> None:
+                nonlocal K, what
+                if k < K:
+                    K, what = k, name
+
+            # Candidates in priority order: on a tie the earlier-listed one is handled first.
+            if state in (State.TIGHTENING, State.HOLDING):
+                if R.snug is not None:
+                    g0 = max(p, R.snug - n0 + 1)
+                    if g0 < m:
+                        take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
+                if P_.watch_yield and R.yield_point is None:
+                    slope, M, valid = self._slopes(R, n0, p, m)
+                    thc = R.th[n0 + p : n0 + m]
+                    ycond = valid & (thc >= P_.min_angle) & (M > 0.0) & (slope <= P_.fraction * M)
+                    take(p + _first(ycond), "yield")
+            if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
+                cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
+                need_app = (CueKind.APPROACH, R.step) not in R.fired
+                need_stop = (CueKind.STOP, R.step) not in R.fired
+                if cue_ok and (need_app or need_stop):
+                    if spec.kind == _YIELD:
+                        if state is State.TIGHTENING and need_app:
+                            if slope is None:
+                                slope, M, valid = self._slopes(R, n0, p, m)
+                            thc = R.th[n0 + p : n0 + m]
+                            assert M is not None
+                            assert valid is not None
+                            acond = (
+                                valid
+                                & (thc >= P_.min_angle)
+                                & (M > 0.0)
+                                & (slope <= P_.approach_fraction * M)
+                            )
+                            take(p + _first(acond), "cue_approach")
+                    else:
+                        v, rate, _ = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
+                        if need_app:
+                            take(
+                                p + _first(v + rate * P_.h_approach >= spec.target), "cue_approach"
+                            )
+                        if need_stop:
+                            take(p + _first(v + rate * P_.h_stop >= spec.target), "cue_stop")
+            if not R.over and state is not State.IDLE:
+                take(p + _first(T[p:] >= P_.max_torque), "over")
+            if state is State.RUNDOWN and R.snug is not None and R.snug - n0 >= p:
+                take(R.snug - n0, "snug")
+            if state is State.TIGHTENING and spec is not None and spec.kind != _YIELD:
+                if spec.kind == _TORQUE:
+                    take(p + _first(T[p:] >= spec.target), "step")
+                else:
+                    take(p + _first(R.th[n0 + p : n0 + m] - R.step_base >= spec.target), "step")
+            if state is State.HOLDING:
+                take(p + _first(T[p:] < P_.release), "release")
+            take(p + _first(t[p:] - la[p:] > P_.timeout), "timeout")
+
+            if M is not None:
+                # running maximum of the slope through the sample handled now (or the frame end)
+                R.slope_max = float(M[min(K, m - 1) - p])
+            if m == K:
+                break
+            k = K
+            gi = base + k
+            tk = float(t[k])
+            match what:
+                case "snug":
+                    self._state = next_state(state, Input.SNUG)
+                    events.append(SnugReached(index=gi, t_s=tk, torque_nm=float(T[k])))
+                case "gap":
+                    R.reasons.append(Reason.DATA_GAP)
+                    return self._finish(n0 + k, Input.DATA_GAP, events) - n0 + 1
+                case "timeout":
+                    R.reasons.append(Reason.TIMEOUT)
+                    return self._finish(n0 + k, Input.TIMEOUT, events) - n0 + 1
+                case "release":
+                    self._finish(n0 + k, Input.RELEASE, events)
+                    return int(k) + 1
+                case "yield":
+                    assert slope is not None
+                    assert M is not None
+                    yp = YieldPoint(
+                        index=gi,
+                        t_s=tk,
+                        torque_nm=float(T[k]),
+                        angle_deg=float(R.th[n0 + k]),
+                        slope_nm_per_deg=float(slope[k - p]),
+                        max_slope_nm_per_deg=float(M[k - p]),
+                    )
+                    R.yield_point = yp
+                    events.append(YieldDetected(point=yp))
+                    if state is State.TIGHTENING and spec is not None and spec.kind == _YIELD:
+                        self._cue(R, kind=CueKind.STOP, gi=gi, tk=tk, pred=tk, events=events)
+                        self._step_done(R, spec=spec, gi=gi, tk=tk, Tk=float(T[k]), events=events)
+                case "cue_approach" | "cue_stop":
+                    assert spec is not None
+                    kind = CueKind.APPROACH if what == "cue_approach" else CueKind.STOP
+                    pred = tk
+                    if spec.kind != _YIELD:
+                        v, rate, _ = self._cue_masks(R, spec=spec, n0=n0, p=k, m=k + 1, t=t)
+                        vk, rk = float(v[0]), float(rate[0])
+                        if vk < spec.target and rk > 0.0:
+                            pred = tk + (spec.target - vk) / rk
+                    self._cue(R, kind=kind, gi=gi, tk=tk, pred=pred, events=events)
+                case "over":
+                    R.over = True
+                    R.reasons.append(Reason.OVER_TORQUE)
+                    events.append(
+                        OverTorque(index=gi, t_s=tk, torque_nm=float(T[k]), limit_nm=P_.max_torque)
+                    )
+                    if state is not State.HOLDING:
+                        self._state = next_state(state, Input.OVER_TORQUE)
+                        step = min(R.step, len(P_.steps) - 1)
+                        self._stop(
+                            R,
+                            trigger=StopTrigger.OVER_TORQUE,
+                            step=step,
+                            last=True,
+                            gi=gi,
+                            tk=tk,
+                            Tk=float(T[k]),
+                            events=events,
+                        )
+                    else:
+                        self._state = next_state(state, Input.OVER_TORQUE)
+                case "step":
+                    assert spec is not None
+                    if (CueKind.STOP, R.step) not in R.fired:
+                        self._cue(R, kind=CueKind.STOP, gi=gi, tk=tk, pred=tk, events=events)
+                    self._step_done(R, spec=spec, gi=gi, tk=tk, Tk=float(T[k]), events=events)
+                case _:
+                    raise AssertionError(f"unhandled candidate {what!r}")
+            p = k
+        return int(m)
+
+    def _cue(
+        self,
+        R: _Rundown,
+        *,
+        kind: CueKind,
+        gi: int,
+        tk: float,
+        pred: float,
+        events: list[Event],
+    ) -> None:
+        if (kind, R.step) in R.fired:
+            return
+        R.fired.add((kind, R.step))
+        R.cues.append(
+            CueRecord(kind=kind, step=R.step, index=gi, t_s=tk, predicted_crossing_t_s=pred)
+        )
+        events.append(
+            CueFired(kind=kind, step=R.step, index=gi, t_s=tk, predicted_crossing_t_s=pred)
+        )
+
+    def _step_done(
+        self,
+        R: _Rundown,
+        *,
+        spec: _StepSpec,
+        gi: int,
+        tk: float,
+        Tk: float,
+        events: list[Event],
+    ) -> None:
+        last = R.step == len(self._p.steps) - 1
+        self._state = next_state(self._state, Input.STOP if last else Input.STEP)
+        # the cues of this step learn their actual crossing
+        R.cues = [
+            CueRecord(
+                kind=c.kind,
+                step=c.step,
+                index=c.index,
+                t_s=c.t_s,
+                predicted_crossing_t_s=c.predicted_crossing_t_s,
+                actual_crossing_index=gi,
+                actual_crossing_t_s=tk,
+            )
+            if c.step == R.step and c.actual_crossing_index is None
+            else c
+            for c in R.cues
+        ]
+        self._stop(
+            R, trigger=spec.trigger, step=R.step, last=last, gi=gi, tk=tk, Tk=Tk, events=events
+        )
+        if not last:
+            R.step_base = float(R.th[gi - R.start_index])
+            R.step += 1
+
+    def _stop(
+        self,
+        R: _Rundown,
+        *,
+        trigger: StopTrigger,
+        step: int,
+        last: bool,
+        gi: int,
+        tk: float,
+        Tk: float,
+        events: list[Event],
+    ) -> None:
+        angle = float(R.th[gi - R.start_index])
+        lead = None
+        for c in R.cues:
+            if c.kind is CueKind.STOP and c.step == step:
+                lead = tk - c.t_s
+        if last:
+            R.stop = StopPoint(index=gi, t_s=tk, trigger=trigger, torque_nm=Tk, angle_deg=angle)
+        events.append(
+            StopReached(
+                index=gi,
+                t_s=tk,
+                step=step,
+                last_step=last,
+                trigger=trigger,
+                torque_nm=Tk,
+                angle_deg=angle,
+                cue_lead_s=lead,
+            )
+        )
+
+    def _finish(self, e: int, inp: Input, events: list[Event]) -> int:
+        """End the rundown at local index ``e``: judge, emit, return to idle. Returns ``e``."""
+        R = self._r
+        assert R is not None
+        P_ = self._p
+        n = e + 1
+        R.n = n
+        T = R.T[:n]
+        th = R.th[:n]
+        starts = [s for s in R.stroke_starts if s <= e]
+        ss = starts[-1] if starts else 0
+        pk = ss + int(np.argmax(T[ss:n]))
+        final_T = float(T[pk])
+        final_th = float(th[pk])
+        reasons = list(R.reasons)
+        if R.snug is None or R.snug > e:
+            reasons.append(Reason.SNUG_NOT_REACHED)
+            snug = None
+        else:
+            snug = SnugPoint(
+                index=R.start_index + R.snug, t_s=float(R.t[R.snug]), torque_nm=float(R.T[R.snug])
+            )
+        if P_.torque_window is not None:
+            lo, hi = P_.torque_window
+            if final_T < lo:
+                reasons.append(Reason.TORQUE_LOW)
+            elif final_T > hi:
+                reasons.append(Reason.TORQUE_HIGH)
+        if P_.angle_window is not None and snug is not None:
+            lo, hi = P_.angle_window
+            if final_th < lo:
+                reasons.append(Reason.ANGLE_LOW)
+            elif final_th > hi:
+                reasons.append(Reason.ANGLE_HIGH)
+        if P_.needs_yield and R.yield_point is None:
+            reasons.append(Reason.YIELD_NOT_FOUND)
+        uniq = tuple(dict.fromkeys(reasons))
+        rate = r2 = None
+        if snug is not None:
+            if R.yield_point is not None:
+                end_angle = max(R.yield_point.angle_deg - P_.window, 0.0)
+            elif R.stop is not None:
+                end_angle = R.stop.angle_deg
+            else:
+                end_angle = final_th
+            ie = int(np.searchsorted(th, end_angle, side="right")) - 1
+            S = R.P[ie + 1] - R.P[0]
+            cnt, sx, sy, sxx, sxy, syy = (float(v) for v in S)
+            dx = cnt * sxx - sx * sx
+            dy = cnt * syy - sy * sy
+            if cnt >= _MIN_FIT_POINTS and dx > 0.0:
+                rate = (cnt * sxy - sx * sy) / dx
+                r2 = ((cnt * sxy - sx * sy) ** 2) / (dx * dy) if dy > 0.0 else 1.0
+                r2 = min(max(r2, 0.0), 1.0)
+        res = RundownResult(
+            status=Status.NOK if uniq else Status.OK,
+            reasons=uniq,
+            strategy=self._program.strategy.value,
+            program_id=self._program.id,
+            program_version=self._program.version,
+            start_index=R.start_index,
+            start_t_s=float(R.t[0]),
+            end_index=R.start_index + e,
+            end_t_s=float(R.t[e]),
+            gyro_bias_dps=R.bias,
+            snug=snug,
+            stop=R.stop,
+            cues=tuple(R.cues),
+            final_torque_nm=final_T,
+            final_angle_deg=final_th,
+            peak_torque_nm=float(T.max()),
+            yield_point=R.yield_point,
+            joint_rate_nm_per_deg=rate,
+            joint_rate_r2=r2,
+            curve_t_s=R.t[:n].copy(),
+            curve_torque_nm=T.copy(),
+            curve_angle_deg=th.copy(),
+        )
+        self._state = next_state(self._state, inp)
+        self._r = None
+        self._armed = bool(T[e] < self._settings.start_torque_nm)
+        events.append(RundownFinished(index=res.end_index, t_s=res.end_t_s, result=res))
+        return e
