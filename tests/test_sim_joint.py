@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from typing import Any
 
 import numpy as np
 import pytest
@@ -42,7 +43,7 @@ def make_joint(
 ) -> JointModel:
     dw, dh = DW_DH[d]
     rp, rm = CLASSES[cls]
-    params: dict[str, float] = {
+    params: dict[str, Any] = {
         "bolt_resilience_mm_per_n": bolt_resilience_mm_per_n(d, pitch, 30.0, 205_000.0),
         "clamped_resilience_mm_per_n": clamped_resilience_mm_per_n(
             dw, dh, 3.0 * d, 30.0, 205_000.0
@@ -306,7 +307,7 @@ def test_resilience_helpers_scale_with_length_and_area() -> None:
         {"strip_preload_n": 0.0},
     ],
 )
-def test_impossible_joints_are_refused(change: dict[str, float]) -> None:
+def test_impossible_joints_are_refused(change: dict[str, Any]) -> None:
     with pytest.raises(JointError):
         dataclasses.replace(make_joint(), **change)
 
