@@ -256,6 +256,13 @@ def plan_joint(inp: JointInput) -> JointPlan:
             f"grip {inp.grip_mm:g} mm is shorter than the diameter: a stiff joint where a few"
             " degrees change the preload a lot and embedding loses much of it"
         )
+    if inp.clamped_od_mm is None and inp.grip_mm > 4.0 * thread.d_mm:
+        # Past lK ≈ 4·d the assumed part width (as wide as the cone) drives tan φ up faster
+        # than the grip adds length (tests/test_planner_resilience.py shows where).
+        warnings.append(
+            "long grip with the clamped parts' outside diameter unknown: give it"
+            " (--clamped-od-mm) for a better clamped-part resilience"
+        )
     if inp.grip_mm > 10.0 * thread.d_mm:
         # Beyond lK ≈ 10·d the cone model of VDI 2230 is outside its usual range (from memory).
         warnings.append("grip longer than 10·d: the deformation-cone model is extrapolated")
