@@ -12,6 +12,13 @@ from clampd.protocol._commands import (
     SelectProgram,
     Unlock,
 )
+from clampd.protocol._declarative import (
+    DeclarativeProfile,
+    ProfileError,
+    list_builtin_profiles,
+    load_builtin_profile,
+    load_profile,
+)
 from clampd.protocol._downsample import DownsampleError, lttb_indices, take
 from clampd.protocol._fields import new_uuid7
 from clampd.protocol._frame import (
@@ -178,6 +185,7 @@ __all__ = [
     "CuePattern",
     "Curve",
     "CurveUnits",
+    "DeclarativeProfile",
     "DownsampleError",
     "DuplicateFrame",
     "ErrorCode",
@@ -202,6 +210,7 @@ __all__ = [
     "Lock",
     "LostFrames",
     "Ping",
+    "ProfileError",
     "ProgramRef",
     "QualityStats",
     "Reason",
@@ -251,6 +260,9 @@ __all__ = [
     "error_reply",
     "format_torque",
     "json_schemas",
+    "list_builtin_profiles",
+    "load_builtin_profile",
+    "load_profile",
     "lttb_indices",
     "new_uuid7",
     "ok_reply",

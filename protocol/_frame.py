@@ -107,9 +107,10 @@ class FrameTooShortError(FrameError):
 class FrameVersionError(FrameError):
     """The version byte names a profile version this decoder does not speak."""
 
-    def __init__(self, *, version: int, supported: int = FRAME_VERSION) -> None:
+    def __init__(self, *, version: int, supported: int = FRAME_VERSION, offset: int = 0) -> None:
         super().__init__(
-            f"frame version {version} at byte 0 is not supported (expected {supported})", offset=0
+            f"frame version {version} at byte {offset} is not supported (expected {supported})",
+            offset=offset,
         )
         self.version = version
         self.supported = supported
@@ -118,11 +119,14 @@ class FrameVersionError(FrameError):
 class FrameLengthError(FrameError):
     """The frame's length disagrees with the sample count its header announces."""
 
-    def __init__(self, *, length: int, count: int, expected: int) -> None:
+    def __init__(
+        self, *, length: int, count: int, expected: int, count_offset: int | None = 10
+    ) -> None:
+        where = "" if count_offset is None else f" at byte {count_offset}"
         super().__init__(
-            f"frame of {length} bytes announces {count} samples at byte 10, "
+            f"frame of {length} bytes announces {count} samples{where}, "
             f"which needs exactly {expected} bytes",
-            offset=10,
+            offset=count_offset,
         )
         self.length = length
         self.count = count
