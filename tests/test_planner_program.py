@@ -1,0 +1,175 @@
+"""The whole plan and the program file it proposes.
+
+The program file must load as TOML with only the engine's program keys, carry the cautions,
+and (where the engine's loader is present) load through ``clampd.daemon.engine.parse_program``.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import replace
+
+import pytest
+
+from clampd.daemon.planner import (
+    CAUTIONS,
+    PROGRAM_KEYS,
+    JointInput,
+    PlannerError,
+    TighteningMethod,
+    plan_joint,
+    program_toml,
+    propose_program,
+    rotation_deg,
+)
+from clampd.protocol import Kind, parse_quantity
+
+M10 = JointInput(thread="M10", property_class="8.8", grip_mm=30.0, mu_thread=0.12, mu_head=0.12)
+
+
+def test_plan_is_consistent_with_its_parts() -> None:
+    plan = plan_joint(M10)
+    lo, hi = plan.mu_thread_range
+    assert lo == 0.12
+    assert hi == pytest.approx(0.16)
+    # The torque gives FM,zul at μ min and less at μ max (VDI 2230 convention).
+    assert plan.preload_at_torque_n[0] == pytest.approx(plan.preload_n)
+    assert plan.preload_at_torque_n[1] < plan.preload_n
+    # The angle from snug closes exactly the gap from the highest snug preload to FM,zul.
+    expected = rotation_deg(
+        plan.preload_n - plan.snug_preload_n[1],
+        plan.bolt.total,
+        plan.clamped.total,
+        plan.thread.pitch_mm,
+    )
+    assert plan.angle_from_snug_deg == pytest.approx(expected)
+    # ν = 0.9 stops short of yield (ν = 1) in every friction corner.
+    assert plan.angle_from_snug_deg < plan.angle_to_yield_range_deg[0]
+    assert plan.angle_to_yield_range_deg[0] <= plan.angle_to_yield_deg
+    assert plan.angle_to_yield_deg <= plan.angle_to_yield_range_deg[1]
+    assert plan.cautions == CAUTIONS
+    assert plan.snug_torque_nm < plan.torque_nm
+
+
+def test_torque_method_uses_alpha_a() -> None:
+    plan = plan_joint(
+        JointInput(
+            thread="M12",
+            property_class="10.9",
+            grip_mm=40.0,
+            mu_thread=0.1,
+            mu_head=0.1,
+            method=TighteningMethod.TORQUE,
+            alpha_a=1.8,
+        )
+    )
+    assert plan.preload_min_n == pytest.approx(plan.preload_n / 1.8)
+    low = plan_joint(
+        JointInput(
+            thread="M12",
+            property_class="10.9",
+            grip_mm=40.0,
+            mu_thread=0.1,
+            mu_head=0.1,
+            mu_thread_max=0.2,
+            mu_head_max=0.2,
+            method=TighteningMethod.TORQUE,
+            alpha_a=1.1,
+        )
+    )
+    assert any("below the friction range" in w for w in low.warnings)
+
+
+def test_stainless_has_no_proof_stress_and_says_so() -> None:
+    plan = plan_joint(
+        JointInput(thread="M8", property_class="A2-70", grip_mm=20, mu_thread=0.2, mu_head=0.2)
+    )
+    assert plan.proof_load_n == pytest.approx(plan.thread.stress_area_mm2 * 450)
+    assert any("no proof stress" in w for w in plan.warnings)
+
+
+def _quantities(prog: dict[str, object]) -> dict[str, object]:
+    out: dict[str, object] = {}
+    for key, value in prog.items():
+        if isinstance(value, str) and key in ("snug_torque", "max_torque"):
+            out[key] = parse_quantity(value, Kind.TORQUE)
+        elif key == "target_angle":
+            assert isinstance(value, str)
+            out[key] = parse_quantity(value, Kind.ANGLE)
+        elif key in ("torque_window", "angle_window"):
+            assert isinstance(value, list)
+            kind = Kind.TORQUE if key == "torque_window" else Kind.ANGLE
+            out[key] = [parse_quantity(v, kind) for v in value]
+        else:
+            out[key] = value
+    return out
+
+
+@pytest.mark.parametrize("strategy", ["torque-angle", "yield"])
+def test_program_file_has_only_engine_keys_and_sane_windows(strategy: str) -> None:
+    plan = plan_joint(M10)
+    text = program_toml(plan, propose_program(plan, strategy))
+    doc = tomllib.loads(text)
+    assert set(doc) == {"program"}
+    prog = doc["program"]
+    assert set(prog) <= PROGRAM_KEYS
+    assert prog["strategy"] == strategy
+    q = _quantities(prog)
+    tw, aw = q["torque_window"], q["angle_window"]
+    assert isinstance(tw, list)
+    assert isinstance(aw, list)
+    assert 0 < tw[0] < tw[1] < q["max_torque"]
+    assert 0 <= aw[0] < aw[1]
+    if strategy == "torque-angle":
+        assert aw[0] <= q["target_angle"] <= aw[1]
+        assert aw[1] <= plan.angle_to_yield_range_deg[0] + 0.01
+        assert tw[0] <= plan.torque_nm <= tw[1]
+        assert "yield_fraction" not in prog
+    else:
+        assert prog["yield_fraction"] == 0.5
+        assert "target_angle" not in prog
+        assert aw[0] <= plan.angle_to_yield_range_deg[0]
+        assert plan.angle_to_yield_range_deg[1] <= aw[1]
+    for caution in CAUTIONS:
+        assert f"# CAUTION: {caution}" in text
+
+
+def test_program_loads_through_the_engine() -> None:
+    engine = pytest.importorskip("clampd.daemon.engine")
+    parse_program = getattr(engine, "parse_program", None)
+    if parse_program is None:
+        pytest.skip("the engine does not export parse_program yet")
+    plan = plan_joint(M10)
+    for strategy in ("torque-angle", "yield"):
+        prop = propose_program(plan, strategy)
+        program = parse_program(program_toml(plan, prop))
+        assert program.id == prop.id
+        assert program.strategy.value == strategy
+        assert program.snug_torque_nm == pytest.approx(prop.snug_torque_nm, abs=0.005)
+        assert program.max_torque_nm == pytest.approx(prop.max_torque_nm, abs=0.005)
+
+
+def test_unsupported_strategy_is_refused() -> None:
+    with pytest.raises(PlannerError) as exc:
+        propose_program(plan_joint(M10), "multi-step")
+    assert exc.value.field == "strategy"
+
+
+@pytest.mark.parametrize(
+    ("changes", "field"),
+    [
+        ({"thread": "M7"}, "thread"),
+        ({"grip_mm": -3.0}, "grip_mm"),
+        ({"grip_mm": 20.0, "shank_mm": 25.0}, "grip_mm"),
+        ({"hole_mm": 9.0}, "hole_mm"),
+        ({"head_mm": 10.5}, "head_mm"),
+        ({"mu_thread_max": 0.1}, "mu_thread_max"),
+        ({"clamped_e_gpa": 205000.0}, "clamped_e_gpa"),
+        ({"property_class": "8.9"}, "property_class"),
+        ({"utilisation": 1.5}, "utilisation"),
+    ],
+)
+def test_impossible_joints_name_the_input(changes: dict[str, object], field: str) -> None:
+    with pytest.raises(PlannerError) as exc:
+        plan_joint(replace(M10, **changes))  # type: ignore[arg-type]
+    assert exc.value.field == field
