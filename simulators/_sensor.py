@@ -30,6 +30,7 @@ from typing import NamedTuple, Protocol
 import numpy as np
 
 from clampd.simulators._encoder import (
+    FRAME_HEADER_SIZE,
     MAX_SAMPLES_PER_NOTIFICATION,
     CuePattern,
     FrameFlags,
@@ -212,6 +213,7 @@ class VirtualWrenchSensor:
         self._rng = rng
         self.source: MotionSource = source if source is not None else _Rest()
         self._rate_hz = params.sample_rate_hz
+        self._per_frame = params.samples_per_frame
         self._streaming = False
         self._sequence = 0
         self._clock_us = params.start_timestamp_us  # unwrapped sensor clock of the next sample
@@ -326,6 +328,21 @@ class VirtualWrenchSensor:
         self._clock_us = 0
         self._clock_reset = True
 
+    def set_max_notification(self, n_bytes: int) -> None:
+        """Fit later frames into ``n_bytes`` of notification payload (ATT MTU − 3).
+
+        PROFILE.md: at MTU 247 up to 28 samples; at the default MTU 23 at most 2 samples.
+        """
+        if n_bytes < 0:
+            raise SensorError(f"payload size must be ≥ 0, got {n_bytes}")
+        fit = (n_bytes - FRAME_HEADER_SIZE) // 8 if n_bytes >= FRAME_HEADER_SIZE + 8 else 2
+        self._per_frame = max(1, min(self.params.samples_per_frame, fit))
+
+    @property
+    def samples_per_frame(self) -> int:
+        """Samples in each later frame."""
+        return self._per_frame
+
     @property
     def sample_rate_hz(self) -> int:
         """The current sample rate (SET_RATE changes it at the next frame)."""
@@ -341,7 +358,7 @@ class VirtualWrenchSensor:
         p = self.params
         period_us = round(1e6 / self._rate_hz)
         first_us = self._clock_us
-        samples = [self.sample_once(period_us) for _ in range(p.samples_per_frame)]
+        samples = [self.sample_once(period_us) for _ in range(self._per_frame)]
         flags = FrameFlags.NONE
         if any(s.overload for s in samples):
             flags |= FrameFlags.OVERLOAD
