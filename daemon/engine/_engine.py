@@ -177,6 +177,7 @@ class _Rundown:
         self.n = 0
         # accumulation state
         self.turning = False
+        self.turn_last = False  # turning status of the last accumulated sample
         self.stroke_peak = 0.0
         self.resume_level = 0.0
         self.stroke_starts: list[int] = []
@@ -541,7 +542,12 @@ class Engine:
                 Tp[0] = R.prev_T
                 Tp[1:] = T[:-1]
                 trap = trap - P_.defl * (T - Tp)
-            inc = np.where(turn, np.maximum(trap, 0.0), 0.0)
+            # an interval counts when the fastener turned at either end of it (the trapezoid
+            # of a stroke's last interval, rate falling to zero, is rotation too)
+            counted = turn.copy()
+            counted[0] |= R.turn_last
+            counted[1:] |= turn[:-1]
+            inc = np.where(counted, np.maximum(trap, 0.0), 0.0)
             w = turn.astype(np.float64)
             if s >= 0:
                 inc[: s + 1] = 0.0  # angle is 0 at snug and counts from the next sample
@@ -564,6 +570,7 @@ class Engine:
             R.P[n0 + 1 : n0 + m + 1] = np.cumsum(vals, axis=0)[1:]
             R.theta_last = float(th[-1])
         R.prev_t, R.prev_T, R.prev_rc = float(t[-1]), float(T[-1]), float(rc[-1])
+        R.turn_last = bool(turn[-1])
         la_in = np.empty(m + 1)
         la_in[0] = R.last_active_t
         la_in[1:] = np.where(P_.release <= T, t, -np.inf)
