@@ -12,9 +12,11 @@ import datetime as dt
 import sqlite3
 import tempfile
 import uuid
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from blockbuster import BlockingError, blockbuster_ctx
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -31,6 +33,17 @@ from clampd.daemon.runtime import (
 from clampd.daemon.runtime._outbox import SCHEMA_VERSION
 
 DAY = 86_400.0
+
+
+@pytest.fixture
+def runtime_guard() -> Iterator[object]:
+    """Fail on blocking calls made by the runtime's code inside the event loop.
+
+    Scans the runtime package by name: the shared ``blockbuster`` fixture scans
+    ``clampd``, a namespace package whose editable-install path matches no file.
+    """
+    with blockbuster_ctx(["clampd.daemon.runtime"]) as bb:
+        yield bb
 
 
 def _id(n: int) -> str:
@@ -322,7 +335,7 @@ def test_pending_matches_a_simple_model(ops: list[tuple[str, int]]) -> None:
 
 
 async def test_async_outbox_round_trip_under_blockbuster(
-    tmp_path: Path, blockbuster: object
+    tmp_path: Path, runtime_guard: object
 ) -> None:
     async with AsyncOutbox(tmp_path / "o.db") as ob:
         assert await ob.put(_id(1), "t", b"a", status="OK")
@@ -338,6 +351,14 @@ async def test_async_outbox_round_trip_under_blockbuster(
         assert await ob.integrity_ok()
         with pytest.raises(OutboxInputError):
             await ob.put("nope", "t", b"x")
+
+
+async def test_the_guard_catches_the_sync_outbox_used_inside_the_loop(
+    tmp_path: Path, runtime_guard: object
+) -> None:
+    # Control for the test above: the same work done synchronously in the loop is caught.
+    with pytest.raises(BlockingError):
+        Outbox(tmp_path / "o.db")
 
 
 async def test_connection_lives_on_the_worker_thread_not_the_loop(tmp_path: Path) -> None:

@@ -20,6 +20,19 @@ from clampd.daemon.runtime._config import (
     load_config,
     parse_config,
 )
+from clampd.daemon.runtime._cues import (
+    SAMPLE_RATE,
+    CuePlayer,
+    CueSound,
+    DeviceCuePlayer,
+    LatencyLog,
+    NullCuePlayer,
+    WavCuePlayer,
+    make_player,
+    read_wav,
+    render,
+    write_wav,
+)
 from clampd.daemon.runtime._outbox import (
     AsyncOutbox,
     Entry,
@@ -34,15 +47,21 @@ from clampd.daemon.runtime._outbox import (
 )
 
 __all__ = [
+    "SAMPLE_RATE",
     "AsyncOutbox",
     "BrokerConfig",
     "CalibrationState",
     "ConfigError",
     "ConfigProblem",
+    "CuePlayer",
+    "CueSound",
     "CuesConfig",
+    "DeviceCuePlayer",
     "Entry",
     "JournalConfig",
+    "LatencyLog",
     "LoadedConfig",
+    "NullCuePlayer",
     "Outbox",
     "OutboxConfig",
     "OutboxConflictError",
@@ -55,11 +74,16 @@ __all__ = [
     "PlaintextRemoteError",
     "StationConfig",
     "StationSection",
+    "WavCuePlayer",
     "WrenchConfig",
     "apply_env_overrides",
     "calibration_state",
     "check_broker_transport",
     "load_config",
+    "make_player",
     "next_delay",
     "parse_config",
+    "read_wav",
+    "render",
+    "write_wav",
 ]
