@@ -173,3 +173,22 @@ def test_impossible_joints_name_the_input(changes: dict[str, object], field: str
     with pytest.raises(PlannerError) as exc:
         plan_joint(replace(M10, **changes))  # type: ignore[arg-type]
     assert exc.value.field == field
+
+
+def test_wrench_is_judged_on_the_highest_torque_it_will_see() -> None:
+    # Torque control: the set torque. Torque-angle: the end of the angle step at the highest
+    # friction, which is above the set torque.
+    torque = plan_joint(replace(M10, method=TighteningMethod.TORQUE, wrench_max_nm=100.0))
+    angle = plan_joint(replace(M10, wrench_max_nm=100.0))
+    assert torque.tool is not None
+    assert angle.tool is not None
+    assert torque.tool.target_nm == pytest.approx(torque.torque_nm)
+    assert angle.tool.target_nm == pytest.approx(angle.final_torque_range_nm[1])
+    assert angle.tool.target_nm > angle.torque_nm
+
+
+def test_soft_tapped_part_warns_about_stripping() -> None:
+    soft = plan_joint(replace(M10, tapped=True, clamped_e_gpa=70.0))
+    steel = plan_joint(replace(M10, tapped=True))
+    assert any("stripping" in w for w in soft.warnings)
+    assert not any("stripping" in w for w in steel.warnings)

@@ -270,12 +270,26 @@ def plan_joint(inp: JointInput) -> JointPlan:
         # Below ~15° the scatter of snug and of the wrench's own angle error is a large share
         # of the angle step (common practice, no source).
         warnings.append(f"angle from snug is only {angle:.1f}°; snug scatter dominates the preload")
+    if inp.tapped and e_clamped < 150_000.0:
+        # A tapped hole in a part softer than steel (aluminium, cast iron) strips before the
+        # bolt breaks unless the engagement is long enough; VDI 2230 checks it separately.
+        warnings.append(
+            "tapped hole in a material softer than steel: check the thread engagement length"
+            " against stripping"
+        )
     if inp.utilisation > 0.9:
         warnings.append(f"utilisation {inp.utilisation:g} leaves little margin below yield")
 
     tool = None
     if inp.wrench_max_nm is not None:
-        target = t_y[1] if method is TighteningMethod.YIELD else max(ma, t_final[1])
+        # The highest torque the wrench will see: at yield, at the end of the angle step with
+        # the highest friction, or the set torque itself.
+        if method is TighteningMethod.YIELD:
+            target = t_y[1]
+        elif method is TighteningMethod.TORQUE_ANGLE:
+            target = max(ma, t_final[1])
+        else:
+            target = ma
         tool = tool_fit(target, inp.wrench_max_nm)
         warnings.extend(tool.warnings)
 

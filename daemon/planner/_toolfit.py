@@ -98,7 +98,7 @@ def tool_fit(target_nm: float, wrench_max_nm: float) -> ToolFit:
     if frac < ISO6789_LOW_FRACTION:
         warnings.append(
             f"target is {frac:.0%} of the wrench maximum, below the ISO 6789 calibrated span"
-            f" ({ISO6789_LOW_FRACTION:.0%}–100 %); use a wrench with a maximum of {span}"
+            f" ({ISO6789_LOW_FRACTION:.0%}–100%); use a wrench with a maximum of {span}"
         )
     return ToolFit(
         target_nm=target_nm,
