@@ -181,6 +181,18 @@ def test_duplicate_wrenches_and_programs_are_refused() -> None:
         parse_config(MINIMAL + '[[program]]\nstrategy = "torque"\n', env={})
 
 
+def test_programs_are_validated_by_the_engine_with_full_paths() -> None:
+    good = (
+        '[[program]]\nid = "p1"\nstrategy = "torque"\nsnug_torque = "3 N*m"\n'
+        'target_torque = "12 N*m"\n'
+    )
+    assert parse_config(MINIMAL + good, env={}).config.program[0]["id"] == "p1"
+    bad = good.replace('"12 N*m"', '"12 deg"') + "colour = 3\n"
+    with pytest.raises(ConfigError) as info:
+        parse_config(MINIMAL + bad, env={})
+    assert set(_paths(info.value)) == {"program[0].target_torque", "program[0].colour"}
+
+
 def test_broker_secret_rules(tmp_path: Path) -> None:
     both = MINIMAL.replace(
         "[broker]\n", f'[broker]\npassword = "s3"\npassword_file = "{tmp_path}/p"\n'

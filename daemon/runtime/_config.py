@@ -19,9 +19,9 @@ station) must not cross a plant network unencrypted by accident.
 
 Programs
 --------
-``[[program]]`` tables use the same keys as program files. When the engine's
-``program_from_mapping`` is importable they are validated through it; otherwise only their
-``id`` is checked here and the tables are kept as plain mappings for the engine to load.
+``[[program]]`` tables use the same keys as program files and are validated through the
+engine's ``program_from_mapping`` (its problems keep their field paths, prefixed with
+``program[i]``); the validated config keeps them as plain mappings for the engine to load.
 """
 
 from __future__ import annotations
@@ -29,7 +29,6 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import enum
-import importlib
 import ipaddress
 import os
 import re
@@ -470,24 +469,19 @@ def _problems_from(exc: pydantic.ValidationError) -> list[ConfigProblem]:
     return problems
 
 
-def _program_loader() -> Any:
-    try:
-        module = importlib.import_module("clampd.daemon.engine._program")
-    except ImportError:
-        return None
-    return getattr(module, "program_from_mapping", None)
-
-
 def _check_programs(config: StationConfig) -> list[ConfigProblem]:
-    loader = _program_loader()
-    if loader is None:
-        return []
+    # The engine owns the program format; its problems carry paths inside one table.
+    from clampd.daemon.engine import ProgramError, program_from_mapping
+
     problems = []
     for i, table in enumerate(config.program):
         try:
-            loader(dict(table))
-        except Exception as exc:  # the engine's ProgramError, with its own field paths
-            problems.append(ConfigProblem(path=f"program[{i}]", message=str(exc)))
+            program_from_mapping(table)
+        except ProgramError as exc:
+            for path, message in exc.problems:
+                inner = path.removeprefix("program").lstrip(".")
+                where = f"program[{i}].{inner}" if inner else f"program[{i}]"
+                problems.append(ConfigProblem(path=where, message=message))
     return problems
 
 
