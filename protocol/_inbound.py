@@ -245,7 +245,7 @@ def parse_command(
     if kind != name.value:
         fail(ErrorCode.KIND_MISMATCH, f"kind {kind!r} sent on the {name.value!r} topic", reply)
     version = obj.get("schema_version")
-    if "schema_version" in obj and version not in _SCHEMA_VERSIONS:
+    if "schema_version" in obj and not (isinstance(version, str) and version in _SCHEMA_VERSIONS):
         fail(
             ErrorCode.UNSUPPORTED_VERSION,
             f"schema_version {version!r} not supported (supported: {sorted(_SCHEMA_VERSIONS)})",
