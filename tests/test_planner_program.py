@@ -10,6 +10,8 @@ import tomllib
 from dataclasses import replace
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from clampd.daemon.planner import (
     CAUTIONS,
@@ -17,6 +19,7 @@ from clampd.daemon.planner import (
     JointInput,
     PlannerError,
     TighteningMethod,
+    permissible_preload_n,
     plan_joint,
     program_toml,
     propose_program,
@@ -35,9 +38,14 @@ def test_plan_is_consistent_with_its_parts() -> None:
     # The torque gives FM,zul at μ min and less at μ max (VDI 2230 convention).
     assert plan.preload_at_torque_n[0] == pytest.approx(plan.preload_n)
     assert plan.preload_at_torque_n[1] < plan.preload_n
-    # The angle from snug closes exactly the gap from the highest snug preload to FM,zul.
+    # Angle control is bounded by FM,zul at the highest thread friction (most torsion); the
+    # angle closes exactly the gap from the highest snug preload to it.
+    assert plan.angle_target_preload_n == pytest.approx(
+        permissible_preload_n(plan.thread, 640.0, plan.mu_thread_range[1], 0.9)
+    )
+    assert plan.angle_target_preload_n < plan.preload_n
     expected = rotation_deg(
-        plan.preload_n - plan.snug_preload_n[1],
+        plan.angle_target_preload_n - plan.snug_preload_n[1],
         plan.bolt.total,
         plan.clamped.total,
         plan.thread.pitch_mm,
@@ -192,3 +200,53 @@ def test_soft_tapped_part_warns_about_stripping() -> None:
     steel = plan_joint(replace(M10, tapped=True))
     assert any("stripping" in w for w in soft.warnings)
     assert not any("stripping" in w for w in steel.warnings)
+
+
+@settings(max_examples=150, deadline=None)
+@given(
+    size=st.sampled_from(["M6", "M8", "M10", "M12", "M16", "M20", "M24", "M10x1.25", "M16x1.5"]),
+    cls=st.sampled_from(["8.8", "10.9", "12.9", "A2-70", "A4-80"]),
+    grip_per_d=st.floats(0.5, 8.0),
+    mu_g=st.floats(0.06, 0.25),
+    mu_k=st.floats(0.06, 0.25),
+    spread=st.floats(0.0, 0.1),
+    strategy=st.sampled_from(["torque-angle", "yield"]),
+)
+def test_any_valid_joint_gives_an_ordered_plan_and_a_loadable_program(
+    *,
+    size: str,
+    cls: str,
+    grip_per_d: float,
+    mu_g: float,
+    mu_k: float,
+    spread: float,
+    strategy: str,
+) -> None:
+    d = float(size[1:].split("x", maxsplit=1)[0])
+    inp = JointInput(
+        thread=size,
+        property_class=cls,
+        grip_mm=grip_per_d * d,
+        mu_thread=mu_g,
+        mu_head=mu_k,
+        mu_thread_max=mu_g + spread,
+        mu_head_max=mu_k + spread,
+    )
+    plan = plan_joint(inp)
+    assert 0 < plan.snug_preload_n[0] <= plan.snug_preload_n[1] < plan.preload_n
+    assert plan.preload_n < plan.yield_preload_n[1]
+    assert plan.preload_at_torque_n[1] <= plan.preload_at_torque_n[0]
+    assert 0 < plan.angle_from_snug_deg < plan.angle_to_yield_range_deg[0]
+    assert plan.final_torque_range_nm[0] <= plan.final_torque_range_nm[1]
+    # The angle step never takes the bolt to yield, whatever the friction in the range.
+    assert plan.angle_target_preload_n < plan.yield_preload_n[0]
+    if strategy == "torque-angle" and plan.angle_from_snug_deg < 1.0:
+        with pytest.raises(PlannerError, match="use torque control"):
+            propose_program(plan, strategy)
+        return
+    prop = propose_program(plan, strategy)
+    doc = tomllib.loads(program_toml(plan, prop))
+    assert set(doc["program"]) <= PROGRAM_KEYS
+    assert prop.torque_window_nm[0] < prop.torque_window_nm[1] < prop.max_torque_nm
+    assert prop.angle_window_deg[0] < prop.angle_window_deg[1]
+    assert prop.snug_torque_nm < prop.torque_window_nm[0]

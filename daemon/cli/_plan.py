@@ -150,6 +150,7 @@ def plan_as_dict(plan: JointPlan, proposal: ProgramProposal | None) -> dict[str,
         },
         "snug_torque_nm": plan.snug_torque_nm,
         "snug_preload_n": _pair(plan.snug_preload_n, "mu_max", "mu_min"),
+        "angle_target_preload_n": plan.angle_target_preload_n,
         "angle_from_snug_deg": plan.angle_from_snug_deg,
         "angle_to_yield_deg": plan.angle_to_yield_deg,
         "angle_to_yield_range_deg": list(plan.angle_to_yield_range_deg),
@@ -220,7 +221,10 @@ def _table(plan: JointPlan, proposal: ProgramProposal | None) -> str:
         ("bolt resilience δS", f"{plan.bolt.total:.4g} mm/N"),
         ("clamped resilience δP", f"{plan.clamped.total:.4g} mm/N ({plan.clamped.model})"),
         ("snug torque", _torque(plan.snug_torque_nm)),
-        ("angle snug → FM,zul", f"{plan.angle_from_snug_deg:.1f}°"),
+        (
+            "angle snug → FM,zul at μG max",
+            f"{plan.angle_from_snug_deg:.1f}° (to {plan.angle_target_preload_n / 1000:.2f} kN)",
+        ),
         (
             "angle snug → yield (ν 1)",
             (

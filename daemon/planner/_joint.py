@@ -3,11 +3,13 @@
 The planner composes the pure pieces (threads, classes, VDI 2230 preload and torque,
 resilience) into one answer a technician's program can be built from. Friction is a
 range [μ min, μ max]: μ min sizes the torque so the bolt reaches at most FM,zul (the
-published convention), μ max shows the least preload the same torque gives. Angles are
-counted from snug the way the engine counts them; the snug preload itself scatters with
-friction, so the angle is sized from the highest snug preload (μ min) so that the final
-preload stays at or below FM,zul, and the angle to yield is given for both friction
-corners so a yield program can window it.
+published convention), μ max shows the least preload the same torque gives.
+
+Angle control is different: the preload an angle gives hardly depends on friction, but the
+thread torsion it carries does, so the limit that binds is FM,zul at μG max (most torsion,
+lowest permissible preload). The angle step is sized to reach exactly that preload from
+the highest snug preload (μ min); any other friction ends lower. The angle to yield is
+given for both friction corners so a yield program can window it.
 
 Nothing here replaces the joint designer: every plan carries ``CAUTIONS`` and the
 warnings that apply to its inputs.
@@ -122,6 +124,7 @@ class JointPlan:
     clamped: ClampedResilience
     snug_torque_nm: float
     snug_preload_n: tuple[float, float]
+    angle_target_preload_n: float
     angle_from_snug_deg: float
     yield_preload_n: tuple[float, float]
     yield_torque_nm: tuple[float, float]
@@ -195,7 +198,8 @@ def plan_joint(inp: JointInput) -> JointPlan:
         preload_from_torque_n(snug, thread, mu_g[1], mu_k[1], dkm),
         preload_from_torque_n(snug, thread, mu_g[0], mu_k[0], dkm),
     )
-    angle = rotation_deg(fm_zul - snug_f[1], d_s, d_p, p)
+    fm_zul_angle = permissible_preload_n(thread, mat.rp02_min_mpa, mu_g[1], inp.utilisation)
+    angle = rotation_deg(fm_zul_angle - snug_f[1], d_s, d_p, p)
     f_y = (
         permissible_preload_n(thread, mat.rp02_min_mpa, mu_g[1], 1.0),
         permissible_preload_n(thread, mat.rp02_min_mpa, mu_g[0], 1.0),
@@ -214,7 +218,7 @@ def plan_joint(inp: JointInput) -> JointPlan:
         rotation_deg(f_y[1] - snug_f[0], d_s, d_p, p),
     )
     # Final torque at the end of the angle step for each friction corner (elastic bolt).
-    delta_f = fm_zul - snug_f[1]
+    delta_f = fm_zul_angle - snug_f[1]
     t_final = (
         tightening_torque_nm(snug_f[1] + delta_f, thread, mu_g[0], mu_k[0], dkm),
         tightening_torque_nm(snug_f[0] + delta_f, thread, mu_g[1], mu_k[1], dkm),
@@ -233,7 +237,7 @@ def plan_joint(inp: JointInput) -> JointPlan:
                 " the minimum preload is overstated"
             )
     elif method is TighteningMethod.TORQUE_ANGLE:
-        f_max, f_min = fm_zul, snug_f[0] + delta_f
+        f_max, f_min = fm_zul_angle, snug_f[0] + delta_f
         alpha = f_max / f_min
     else:
         f_max, f_min = f_y[1], f_y[0]
@@ -313,6 +317,7 @@ def plan_joint(inp: JointInput) -> JointPlan:
         clamped=clamped,
         snug_torque_nm=snug,
         snug_preload_n=snug_f,
+        angle_target_preload_n=fm_zul_angle,
         angle_from_snug_deg=angle,
         yield_preload_n=f_y,
         yield_torque_nm=t_y,

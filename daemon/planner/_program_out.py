@@ -7,7 +7,8 @@ strings with units so a person can read and edit them. The cautions and the deri
 go in comments at the top, where the loader ignores them but every reader sees them.
 
 Windows (common practice, no source, unless said):
-- torque-angle: target angle is the angle from snug to FM,zul rounded down to a whole
+- torque-angle: target angle is the angle from snug to FM,zul at μG max (see
+  ``_joint``) rounded down to a whole
   degree; the angle window is ±10 % of it (at least ±2°), capped below the smallest angle
   to yield; the torque window spans the final torques of both friction corners, widened
   by 10 %.
@@ -141,7 +142,8 @@ def program_toml(plan: JointPlan, proposal: ProgramProposal) -> str:
         f"#   FM,zul {plan.preload_n:.0f} N at μG min; MA {plan.torque_nm:.2f} N·m",
         f"#   δS {plan.bolt.total:.4g} mm/N, δP {plan.clamped.total:.4g} mm/N",
         (
-            f"#   snug {plan.snug_torque_nm:.2f} N·m; angle from snug to FM,zul"
+            f"#   snug {plan.snug_torque_nm:.2f} N·m; angle from snug to"
+            f" {plan.angle_target_preload_n:.0f} N (FM,zul at μG max)"
             f" {plan.angle_from_snug_deg:.1f}°; to yield {plan.angle_to_yield_range_deg[0]:.1f}"
             f"–{plan.angle_to_yield_range_deg[1]:.1f}°"
         ),
