@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import asyncio
 import datetime as dt
+import json
 import sqlite3
 import tempfile
 import uuid
@@ -20,6 +21,7 @@ from blockbuster import BlockingError, blockbuster_ctx
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from clampd.daemon.cli import main
 from clampd.daemon.runtime import (
     AsyncOutbox,
     Outbox,
@@ -408,3 +410,112 @@ async def test_async_outbox_outside_its_block_is_an_error(tmp_path: Path) -> Non
     ob = AsyncOutbox(tmp_path / "o.db")
     with pytest.raises(OutboxError, match="async with"):
         await ob.pending()
+
+
+# -- clampd results (the journal) ----------------------------------------------------------
+
+
+def _journal(path: Path) -> list[str]:
+    ids = [str(uuid.UUID(int=1000 + n)) for n in range(4)]
+    with Outbox(path) as ob:
+        for n, rid in enumerate(ids):
+            status = "OK" if n != 2 else "NOK"
+            payload = {"id": rid, "status": status, "final_torque_nm": 18.0}
+            ob.put(
+                rid,
+                "larchmont/pump-assembly/line-2/st-040/result",
+                json.dumps(payload).encode(),
+                station="st-040",
+                wrench=f"w-040-{'ab'[n % 2]}",
+                program="cover-m8-torque",
+                part_id=f"HC-{n:04d}",
+                status=status,
+                finished_at=f"2026-05-04T08:0{n}:00.000+00:00",
+            )
+        ob.mark_sent(ids[0])
+    return ids
+
+
+def test_results_list_json_and_filters(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    db = tmp_path / "journal.db"
+    ids = _journal(db)
+    assert main(["results", "--db", str(db), "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert [r["id"] for r in rows] == ids[::-1]  # newest first
+    assert rows[-1]["sent_at"] is not None
+    assert rows[0]["sent_at"] is None
+    assert main(["results", "list", "--db", str(db), "--json", "--status", "NOK"]) == 0
+    assert [r["id"] for r in json.loads(capsys.readouterr().out)] == [ids[2]]
+    assert main(["results", "list", "--db", str(db), "--unsent", "--oldest-first", "--json"]) == 0
+    assert [r["id"] for r in json.loads(capsys.readouterr().out)] == ids[1:]
+
+
+def test_results_list_as_a_table(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    db = tmp_path / "journal.db"
+    ids = _journal(db)
+    assert main(["results", "--db", str(db), "--limit", "2"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].split() == [
+        "seq", "finished_at", "status", "wrench", "program", "part", "sent", "id",
+    ]  # fmt: skip
+    assert len(lines) == 3
+    assert lines[1].split()[-1] == ids[3]
+    assert "HC-0003" in lines[1]
+
+
+def test_results_show(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    db = tmp_path / "journal.db"
+    ids = _journal(db)
+    assert main(["results", "show", ids[2], "--db", str(db), "--json"]) == 0
+    shown = json.loads(capsys.readouterr().out)
+    assert shown["payload"] == {"id": ids[2], "status": "NOK", "final_torque_nm": 18.0}
+    assert shown["part_id"] == "HC-0002"
+    assert main(["results", "show", ids[0], "--db", str(db)]) == 0
+    out = capsys.readouterr().out
+    assert "cover-m8-torque" in out
+    assert '"final_torque_nm": 18.0' in out
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["show"], "needs a result ID"),
+        (["show", str(uuid.UUID(int=5))], "no result"),
+        (["show", "not-an-id"], "not a UUID"),
+        (["list", "x"], "takes no ID"),
+        (["--limit", "0"], "positive"),
+    ],
+)
+def test_results_bad_input_exits_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str], message: str
+) -> None:
+    db = tmp_path / "journal.db"
+    _journal(db)
+    assert main(["results", "--db", str(db), *argv]) == 2
+    err = capsys.readouterr().err
+    assert message in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_results_never_creates_a_missing_journal(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    missing = tmp_path / "typo.db"
+    assert main(["results", "--db", str(missing)]) == 2
+    assert "no journal at" in capsys.readouterr().err
+    assert not missing.exists()
+
+
+def test_results_finds_the_journal_through_the_station_config(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    db = tmp_path / "journal.db"
+    ids = _journal(db)
+    config = tmp_path / "station.toml"
+    config.write_text(
+        '[station]\nid = "st-040"\nname = "x"\ntopic_prefix = "a/b/c/st-040"\n'
+        '[broker]\nurl = "mqtt://127.0.0.1"\n'
+        '[outbox]\npath = "journal.db"\n[journal]\nlist_limit = 1\n'
+    )
+    assert main(["results", "--config", str(config), "--json"]) == 0
+    assert [r["id"] for r in json.loads(capsys.readouterr().out)] == [ids[-1]]
