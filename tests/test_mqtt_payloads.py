@@ -11,6 +11,7 @@ External references used below:
 
 from __future__ import annotations
 
+import asyncio
 import datetime as dt
 import json
 import time
@@ -18,9 +19,12 @@ import uuid
 from pathlib import Path
 from typing import Any
 
+import aiomqtt
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
 from pydantic import BaseModel, ValidationError
 
 from clampd.protocol import (
@@ -50,6 +54,7 @@ from clampd.protocol import (
     ok_reply,
     parse_command,
 )
+from clampd.simulators._broker import LocalBroker
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "protocol" / "examples"
 PREFIX = "brackenfield/deck-assembly/line-3/st-120"
@@ -537,3 +542,90 @@ def test_valid_commands_round_trip(
     assert parsed.payload == command
     assert parsed.name is name
     assert parsed.reply.correlation_id == command.correlation_id
+
+
+# ---------------------------------------------------------------- through a real broker
+
+
+def _publish_properties() -> Properties:
+    return Properties(PacketTypes.PUBLISH)  # type: ignore[no-untyped-call]  # paho is untyped
+
+
+async def test_request_reply_and_retained_status_through_a_real_broker(
+    broker: LocalBroker, topic_prefix: str
+) -> None:
+    """A command travels MES → broker → station and its reply comes back with the correlation.
+
+    MQTT 5 when the broker speaks it (Response Topic and Correlation Data properties, MQTT 5.0
+    §3.3.2.3.5–6), else 3.1.1 with ``reply_to`` and ``correlation_id`` in the payload. The
+    retained station status reaches a subscriber that arrives after it was published.
+    """
+    topics = Topics(topic_prefix)
+    v5 = 5 in broker.protocol_versions
+    proto = aiomqtt.ProtocolVersion.V5 if v5 else aiomqtt.ProtocolVersion.V311
+    reply_topic = f"{topic_prefix}-mes/replies"
+    status = StationStatus.model_validate_json((EXAMPLES / "StationStatus.json").read_bytes())
+    route = topics.route(status)
+
+    async with (
+        aiomqtt.Client(broker.host, broker.port, protocol=proto, identifier="st") as station,
+        aiomqtt.Client(broker.host, broker.port, protocol=proto, identifier="mes") as mes,
+    ):
+        await station.publish(
+            route.topic, status.to_json_bytes(), qos=route.qos, retain=route.retain
+        )
+        await station.subscribe(topics.command_filter(), qos=1)
+        await mes.subscribe(reply_topic, qos=1)
+        body = SelectProgram.model_validate_json((EXAMPLES / "SelectProgram.json").read_bytes())
+        props = None
+        if v5:
+            props = _publish_properties()
+            props.ResponseTopic = reply_topic
+            props.CorrelationData = b"\x07corr"
+            body = body.model_copy(update={"reply_to": None, "correlation_id": "job-42"})
+        else:
+            body = body.model_copy(update={"reply_to": reply_topic, "correlation_id": "job-42"})
+        await mes.publish(
+            topics.command(CommandName.SELECT_PROGRAM),
+            body.to_json_bytes(),
+            qos=1,
+            properties=props,
+        )
+
+        async with asyncio.timeout(5):
+            incoming = await anext(aiter(station.messages))
+        in_props = incoming.properties
+        cmd = parse_command(
+            topics,
+            str(incoming.topic),
+            bytes(incoming.payload),
+            CommandProperties(
+                response_topic=getattr(in_props, "ResponseTopic", None),
+                correlation_data=getattr(in_props, "CorrelationData", None),
+            ),
+        )
+        assert cmd.payload == body
+        assert cmd.reply.topic == reply_topic
+        assert cmd.reply.via == ("mqtt5" if v5 else "payload")
+        out_props = None
+        if cmd.reply.correlation_data is not None:
+            out_props = _publish_properties()
+            out_props.CorrelationData = cmd.reply.correlation_data
+        reply = ok_reply(cmd, "st-120", AT)
+        await station.publish(cmd.reply.topic, reply.to_json_bytes(), qos=1, properties=out_props)
+
+        async with asyncio.timeout(5):
+            answer = await anext(aiter(mes.messages))
+        got = Reply.model_validate_json(bytes(answer.payload))
+        assert got.correlation_id == "job-42"
+        assert got.status is ReplyStatus.OK
+        if v5:
+            assert answer.properties is not None
+            assert getattr(answer.properties, "CorrelationData", None) == b"\x07corr"
+
+    async with aiomqtt.Client(broker.host, broker.port, protocol=proto) as late:
+        await late.subscribe(topics.station_status(), qos=1)
+        async with asyncio.timeout(5):
+            kept = await anext(aiter(late.messages))
+    assert kept.retain
+    assert StationStatus.model_validate_json(bytes(kept.payload)) == status
