@@ -233,8 +233,10 @@ class Operator:
                     r = max(0.0, r - p.accel_dps2 * dt)
                     if r == 0.0:
                         self._enter(OperatorPhase.BACK)
-                else:
-                    r = min(target, r + p.accel_dps2 * dt) if r < target else target
+                elif r < target:
+                    r = min(target, r + p.accel_dps2 * dt)
+                else:  # slowing down after an APPROACH cue
+                    r = max(target, r - p.accel_dps2 * dt)
                 self._travel += r * dt
                 return r
             case OperatorPhase.BACK:
