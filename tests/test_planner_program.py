@@ -250,3 +250,9 @@ def test_any_valid_joint_gives_an_ordered_plan_and_a_loadable_program(
     assert prop.torque_window_nm[0] < prop.torque_window_nm[1] < prop.max_torque_nm
     assert prop.angle_window_deg[0] < prop.angle_window_deg[1]
     assert prop.snug_torque_nm < prop.torque_window_nm[0]
+
+
+def test_alpha_a_outside_torque_control_is_flagged_not_used() -> None:
+    plan = plan_joint(replace(M10, alpha_a=2.5))
+    assert any("αA applies to torque control only" in w for w in plan.warnings)
+    assert plan.alpha_a < 2.0  # the torque-angle range, not the given factor

@@ -225,6 +225,11 @@ def plan_joint(inp: JointInput) -> JointPlan:
     )
 
     method = inp.method
+    if inp.alpha_a is not None and method is not TighteningMethod.TORQUE:
+        warnings.append(
+            f"αA applies to torque control only; for {method.value} the preload range comes"
+            " from snug and yield scatter, so the given αA is not used"
+        )
     if method is TighteningMethod.TORQUE:
         alpha = ALPHA_A[method] if inp.alpha_a is None else inp.alpha_a
         if not (math.isfinite(alpha) and alpha >= 1.0):
