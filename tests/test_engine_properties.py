@@ -75,7 +75,7 @@ def traces(draw: st.DrawFn) -> tuple[F, F, F]:
 
     def seg(n: int, T: F, r: F) -> None:
         nonlocal t0
-        ts.append(t0 + dt * np.arange(1, n + 1))
+        ts.append(t0 + dt * np.arange(1, n + 1, dtype=np.float64))
         t0 += dt * n
         Ts.append(T + rng.normal(0.0, noise_T, n))
         rs.append(r + bias + rng.normal(0.0, noise_r, n))
