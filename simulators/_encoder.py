@@ -18,6 +18,9 @@ from __future__ import annotations
 import enum
 import math
 import struct
+import tomllib
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -29,6 +32,7 @@ __all__ = [
     "PROFILE_VERSION",
     "RESERVED_COUNT",
     "CuePattern",
+    "DeclarativeEncoder",
     "EncodeError",
     "FrameFlags",
     "Opcode",
@@ -196,3 +200,215 @@ def encode_cue(pattern: int, duration_ms: int) -> bytes:
             f"cue pattern must be a u8 and duration a u16, got {pattern}, {duration_ms}"
         )
     return struct.pack("<BBH", Opcode.CUE, pattern, duration_ms)
+
+
+# -- declarative profiles -----------------------------------------------------------------
+# A second sensor family is described by a TOML file (protocol/profiles/*.toml): header and
+# sample fields in wire order with a type, a role, scales and units. This encoder reads the
+# same TOML text with tomllib and its own unit table, never the protocol's profile loader, so
+# a misreading of a profile shows up as a disagreement in the cross-check tests.
+
+_TYPE_CODES = {
+    "u8": "B",
+    "i8": "b",
+    "u16": "H",
+    "i16": "h",
+    "u32": "I",
+    "i32": "i",
+    "u64": "Q",
+    "i64": "q",
+    "f32": "f",
+    "f64": "d",
+}
+# SI value of one unit. 1 in·lbf = 0.0254 m × 4.4482216152605 N (NIST SP 811 B.8, exact
+# definitions of the inch and the pound-force); 1 rad = 180/π degrees.
+_TORQUE_UNITS = {
+    "n*m": 1.0,
+    "n*cm": 0.01,
+    "n*mm": 0.001,
+    "in*lbf": 0.0254 * 4.4482216152605,
+    "lbf*in": 0.0254 * 4.4482216152605,
+    "ft*lbf": 0.3048 * 4.4482216152605,
+    "lbf*ft": 0.3048 * 4.4482216152605,
+}
+_RATE_UNITS = {"deg/s": 1.0, "rad/s": 180.0 / math.pi, "rpm": 6.0, "rev/min": 6.0}
+_TIME_UNITS_US = {"us": 1, "µs": 1, "ms": 1000, "s": 1_000_000}
+_FLAG_NAMES = {f.name for f in FrameFlags if f.name and f is not FrameFlags.NONE}
+
+
+def _unit_factor(unit: object, table: dict[str, float], where: str) -> float:
+    key = str(unit).strip().lower().replace(" ", "").replace("·", "*")
+    if key not in table:
+        raise EncodeError(f"{where}: unit {unit!r} not known to the simulator ({sorted(table)})")
+    return table[key]
+
+
+def _int_range(ftype: str) -> tuple[int, int]:
+    bits = struct.calcsize(_TYPE_CODES[ftype]) * 8
+    if ftype.startswith("u"):
+        return 0, (1 << bits) - 1
+    return -(1 << (bits - 1)), (1 << (bits - 1)) - 1
+
+
+class DeclarativeEncoder:
+    """Encodes sample frames for a sensor described by a declarative profile (TOML text).
+
+    Raises :class:`EncodeError` for a description it cannot follow (unknown type or unit, a
+    role missing); values out of a field's range saturate, and a sample that would hit the
+    profile's ``invalid`` sentinel is moved one count toward zero (a real sensor never sends
+    "no reading" for a reading it has).
+    """
+
+    def __init__(self, toml_text: str) -> None:
+        try:
+            spec = tomllib.loads(toml_text)
+        except tomllib.TOMLDecodeError as exc:
+            raise EncodeError(f"profile is not TOML: {exc}") from exc
+        try:
+            self.name = str(spec["name"])
+            order = {"little": "<", "big": ">"}[spec["byte_order"]]
+            self._header: list[dict[str, Any]] = list(spec["header"]["fields"])
+            self._sample: list[dict[str, Any]] = list(spec["sample"]["fields"])
+        except (KeyError, TypeError) as exc:
+            raise EncodeError(f"profile lacks or misstates {exc}") from exc
+        for f in (*self._header, *self._sample):
+            if f.get("type") not in _TYPE_CODES:
+                raise EncodeError(f"field {f.get('name')!r}: unknown type {f.get('type')!r}")
+        self._head_struct = struct.Struct(
+            order + "".join(_TYPE_CODES[f["type"]] for f in self._header)
+        )
+        self._sample_struct = struct.Struct(
+            order + "".join(_TYPE_CODES[f["type"]] for f in self._sample)
+        )
+        roles = {f.get("role") for f in self._header}
+        for needed in ("sequence", "timestamp", "count"):
+            if needed not in roles:
+                raise EncodeError(f"profile has no header field with role {needed!r}")
+        sample_roles = {f.get("role") for f in self._sample}
+        if "torque" not in sample_roles:
+            raise EncodeError("profile has no sample field with role 'torque'")
+        period = spec.get("constants", {}).get("period")
+        self.fixed_period_us: int | None = None
+        if period is not None:
+            number, _, unit = str(period).strip().partition(" ")
+            factor = _TIME_UNITS_US.get(unit.strip())
+            if factor is None:
+                raise EncodeError(f"constants.period: unknown time unit in {period!r}")
+            self.fixed_period_us = round(float(number) * factor)
+
+    @classmethod
+    def from_file(cls, path: str | Path) -> DeclarativeEncoder:
+        """Read a profile TOML file."""
+        return cls(Path(path).read_text(encoding="utf-8"))
+
+    @property
+    def axes(self) -> tuple[str, ...]:
+        """Rate axes the sensor measures ('x', 'y', 'z')."""
+        return tuple(
+            str(f["role"])[-1] for f in self._sample if str(f.get("role", "")).startswith("rate_")
+        )
+
+    def encode(
+        self,
+        *,
+        sequence: int,
+        timestamp_us: int,
+        period_us: int,
+        torque_nm: npt.ArrayLike,
+        rate_dps: npt.ArrayLike,
+        flags: FrameFlags = FrameFlags.NONE,
+    ) -> bytes:
+        """One notification; ``rate_dps`` has shape (count, 3) in x, y, z (unused axes ignored).
+
+        Counter and clock wrap to their field widths as the real sensor's would.
+        """
+        torque = np.asarray(torque_nm, dtype=np.float64)
+        rates = np.asarray(rate_dps, dtype=np.float64)
+        count = torque.shape[0] if torque.ndim == 1 else -1
+        if count < 1 or rates.shape != (count, 3):
+            raise EncodeError(
+                f"need torque (n,) and rates (n, 3), got {torque.shape}, {rates.shape}"
+            )
+        if not (np.isfinite(torque).all() and np.isfinite(rates).all()):
+            raise EncodeError("readings must be finite")
+        if self.fixed_period_us is not None and period_us != self.fixed_period_us:
+            raise EncodeError(f"{self.name} samples every {self.fixed_period_us} µs only")
+        head: list[int | float] = []
+        for f in self._header:
+            head.append(
+                self._header_value(
+                    f,
+                    sequence=sequence,
+                    timestamp_us=timestamp_us,
+                    period_us=period_us,
+                    count=count,
+                    flags=flags,
+                )
+            )
+        body = bytearray(self._head_struct.pack(*head))
+        columns = [self._column(f, torque, rates) for f in self._sample]
+        for i in range(count):
+            body += self._sample_struct.pack(*(col[i] for col in columns))
+        return bytes(body)
+
+    def _header_value(
+        self,
+        f: dict[str, Any],
+        *,
+        sequence: int,
+        timestamp_us: int,
+        period_us: int,
+        count: int,
+        flags: FrameFlags,
+    ) -> int:
+        lo, hi = _int_range(f["type"]) if not f["type"].startswith("f") else (0, 0)
+        span = hi - lo + 1
+        match f.get("role"):
+            case "sequence":
+                return sequence % span + lo
+            case "timestamp":
+                unit_us = _TIME_UNITS_US.get(str(f.get("unit")))
+                if unit_us is None:
+                    raise EncodeError(f"field {f['name']!r}: unknown time unit {f.get('unit')!r}")
+                return (timestamp_us // unit_us) % span + lo
+            case "period":
+                unit_us = _TIME_UNITS_US.get(str(f.get("unit")))
+                if unit_us is None or period_us % unit_us:
+                    raise EncodeError(f"period {period_us} µs not expressible in {f.get('unit')!r}")
+                return period_us // unit_us
+            case "count":
+                if count > hi:
+                    raise EncodeError(f"{count} samples do not fit field {f['name']!r}")
+                return count
+            case "flags":
+                bits = f.get("flag_bits") or {}
+                unknown = set(bits) - _FLAG_NAMES
+                if unknown:
+                    raise EncodeError(f"field {f['name']!r}: unknown flags {sorted(unknown)}")
+                return sum(1 << int(b) for name, b in bits.items() if flags & FrameFlags[name])
+            case _:
+                return int(f.get("expect", 0))
+
+    def _column(
+        self,
+        f: dict[str, Any],
+        torque: npt.NDArray[np.float64],
+        rates: npt.NDArray[np.float64],
+    ) -> list[int] | list[float]:
+        role = f.get("role")
+        scale = float(f.get("scale", 1.0))
+        if role == "torque":
+            values = torque / _unit_factor(f.get("unit"), _TORQUE_UNITS, f["name"]) / scale
+        elif role in ("rate_x", "rate_y", "rate_z"):
+            axis = "xyz".index(role[-1])
+            values = rates[:, axis] / _unit_factor(f.get("unit"), _RATE_UNITS, f["name"]) / scale
+        else:
+            values = np.zeros(torque.shape[0])
+        if f["type"].startswith("f"):
+            return [float(v) for v in values]
+        lo, hi = _int_range(f["type"])
+        raw = np.clip(np.round(values), lo, hi).astype(np.int64)
+        invalid = f.get("invalid")
+        if invalid is not None:
+            raw[raw == int(invalid)] -= int(np.sign(invalid))
+        return [int(v) for v in raw]

@@ -10,6 +10,8 @@ from __future__ import annotations
 import dataclasses
 import math
 import struct
+import tomllib
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -20,13 +22,21 @@ from hypothesis.extra import numpy as hnp
 from scipy import stats
 
 from clampd.protocol import CuePattern as ProtocolCue
-from clampd.protocol import decode_frame, decode_info, encode_cue, encode_set_rate
+from clampd.protocol import (
+    decode_frame,
+    decode_info,
+    encode_cue,
+    encode_set_rate,
+    list_builtin_profiles,
+    load_builtin_profile,
+)
 from clampd.simulators import (
     FRAME_HEADER_SIZE,
     INFO_SIZE,
     Bench,
     ControlRejected,
     CuePattern,
+    DeclarativeEncoder,
     EncodeError,
     FrameFlags,
     JointModel,
@@ -394,3 +404,56 @@ def test_impossible_sensor_parameters_are_refused(change: dict[str, Any]) -> Non
         return
     with pytest.raises(SensorError):
         dataclasses.replace(SensorParams(), **change)
+
+
+PROFILES = Path(__file__).resolve().parents[1] / "protocol" / "profiles"
+
+
+@pytest.mark.parametrize("name", list_builtin_profiles())
+def test_declarative_encoder_agrees_with_the_protocol_profile_decoder(name: str) -> None:
+    """Encode from the TOML text here, decode with the protocol's profile loader."""
+    enc = DeclarativeEncoder.from_file(PROFILES / f"{name}.toml")
+    profile = load_builtin_profile(name)
+    rng = np.random.default_rng(1)
+    period = enc.fixed_period_us or 1000
+    spec = tomllib.loads((PROFILES / f"{name}.toml").read_text(encoding="utf-8"))
+    (seq_type,) = [f["type"] for f in spec["header"]["fields"] if f.get("role") == "sequence"]
+    seq_modulus = 1 << int(seq_type[1:])
+    torque = rng.uniform(-50.0, 150.0, 20)
+    rates = rng.uniform(-300.0, 300.0, (20, 3))
+    for seq in (0, 255, 256, 70_000):
+        data = enc.encode(
+            sequence=seq,
+            timestamp_us=seq * 40_000 + 1_234_567,
+            period_us=period,
+            torque_nm=torque,
+            rate_dps=rates,
+        )
+        frame = profile.decode(data)
+        assert frame.count == 20
+        assert frame.period_us == period
+        # Counters wrap at the field's width (8 bits for a u8 counter, ...).
+        assert frame.sequence == seq % seq_modulus
+        assert abs(frame.torque_nm - torque).max() < 0.01  # 0.01 in·lbf is 0.0011 N·m
+        for axis in enc.axes:
+            i = "xyz".index(axis)
+            assert abs(frame.rate_dps[:, i] - rates[:, i]).max() < 0.3  # 0.01 rad/s = 0.57°/s
+
+
+def test_declarative_encoder_refuses_what_it_cannot_follow() -> None:
+    text = (PROFILES / "bench-stick.toml").read_text(encoding="utf-8")
+    enc = DeclarativeEncoder(text)
+    with pytest.raises(EncodeError, match="2000"):
+        enc.encode(
+            sequence=0, timestamp_us=0, period_us=1000, torque_nm=[1.0], rate_dps=[[0, 0, 0]]
+        )
+    with pytest.raises(EncodeError):
+        enc.encode(sequence=0, timestamp_us=0, period_us=2000, torque_nm=[1.0], rate_dps=[[0, 0]])
+    with pytest.raises(EncodeError, match="unit"):
+        DeclarativeEncoder(text.replace('unit = "in*lbf"', 'unit = "furlong"')).encode(
+            sequence=0, timestamp_us=0, period_us=2000, torque_nm=[1.0], rate_dps=[[0, 0, 0]]
+        )
+    with pytest.raises(EncodeError, match="type"):
+        DeclarativeEncoder(text.replace('type = "i32"', 'type = "i24"'))
+    with pytest.raises(EncodeError, match="TOML"):
+        DeclarativeEncoder("name = ")
