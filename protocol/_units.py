@@ -14,6 +14,7 @@ from __future__ import annotations
 import enum
 import functools
 import math
+import re
 from typing import Any
 
 __all__ = ["NM_PER_FT_LBF", "NM_PER_IN_LBF", "Kind", "UnitError", "format_torque", "parse_quantity"]
@@ -46,11 +47,18 @@ def _registry() -> Any:
     import pint  # imported lazily: ~0.3 s, and only configs and the CLI need it
 
     ureg: Any = pint.UnitRegistry()
-    # Trade spellings: N*m, Nm, ft*lbf, ftlb, in*lbf, inlb, lbf*ft
-    ureg.define("Nm = newton * meter")
-    ureg.define("ftlb = foot * force_pound")
-    ureg.define("inlb = inch * force_pound")
     return ureg
+
+
+# Trade spellings pint reads differently ("Nm" would be a number-metre, "ftlb" femto-troy-pound);
+# rewritten before parsing rather than redefined in the registry, which pint logs as a warning.
+_TRADE_SPELLINGS = (
+    (re.compile(r"\bN\.?m\b"), "N*m"),
+    (re.compile(r"\bft\.?lbf?\b"), "ft*lbf"),
+    (re.compile(r"\bin\.?lbf?\b"), "in*lbf"),
+    (re.compile(r"\blbf?\.?ft\b"), "lbf*ft"),
+    (re.compile(r"\blbf?\.?in\b"), "lbf*in"),
+)
 
 
 def parse_quantity(value: str | float | int, kind: Kind) -> float:
@@ -61,6 +69,8 @@ def parse_quantity(value: str | float | int, kind: Kind) -> float:
         result = float(value)
     else:
         text = value.strip().replace("·", "*").replace("°", " deg")
+        for pattern, replacement in _TRADE_SPELLINGS:
+            text = pattern.sub(replacement, text)
         if not text:
             raise UnitError(f"empty {kind.name.lower()} quantity")
         ureg = _registry()
