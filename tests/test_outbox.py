@@ -350,6 +350,8 @@ async def test_async_outbox_round_trip_under_blockbuster(
         assert got is not None
         assert got.sent
         assert (await ob.stats()).unsent == 1
+        assert await ob.count_unsent() == 1
+        await ob.checkpoint()
         assert await ob.integrity_ok()
         with pytest.raises(OutboxInputError):
             await ob.put("nope", "t", b"x")

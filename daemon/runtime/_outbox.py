@@ -710,8 +710,20 @@ class AsyncOutbox:
         """See ``Outbox.integrity_ok``."""
         return await self._run(self._core().integrity_ok)
 
+    async def count_unsent(self) -> int:
+        """See ``Outbox.count_unsent``."""
+        return await self._run(self._core().count_unsent)
+
+    async def checkpoint(self) -> None:
+        """See ``Outbox.checkpoint``."""
+        await self._run(self._core().checkpoint)
+
     async def wait_pending(self) -> None:
-        """Return when at least one unsent result may exist (see the class docstring)."""
+        """Return when at least one unsent result may exist (see the class docstring).
+
+        While unsent results exist it returns at once, so a flusher must wait for its
+        broker connection *before* calling it, or it would spin during an outage.
+        """
         # Clear before looking, so a put that lands after the look sets the event again.
         self._new_result.clear()
         if await self._run(self._core().count_unsent) > 0:
