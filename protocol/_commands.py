@@ -22,6 +22,7 @@ from clampd.protocol._fields import Ident, InboundModel, PartId, Text
 
 __all__ = [
     "CORRELATION_ID_PATTERN",
+    "MAX_JOINT_POSITIONS",
     "Abort",
     "CommandName",
     "CommandPayload",

@@ -35,7 +35,7 @@ from clampd.protocol._commands import (
     ErrorCode,
 )
 from clampd.protocol._payloads import Reply, ReplyStatus
-from clampd.protocol._topics import TopicError, Topics, check_topic_name
+from clampd.protocol._topics import TopicError, Topics, UnknownCommandError, check_topic_name
 
 __all__ = [
     "MAX_COMMAND_BYTES",
@@ -200,6 +200,8 @@ def parse_command(
     )
     try:
         name = topics.parse_command_topic(topic)
+    except UnknownCommandError as exc:
+        raise CommandError(ErrorCode.UNKNOWN_COMMAND, str(exc), reply=fallback) from None
     except TopicError as exc:
         raise CommandError(ErrorCode.BAD_TOPIC, str(exc), reply=fallback) from None
 

@@ -27,8 +27,8 @@ import numpy as np
 import numpy.typing as npt
 from pydantic import Field, model_validator
 
-from clampd.protocol._commands import CommandName, ErrorCode
-from clampd.protocol._downsample import lttb_indices, take
+from clampd.protocol._commands import MAX_JOINT_POSITIONS, CommandName, ErrorCode
+from clampd.protocol._downsample import DownsampleError, lttb_indices, take
 from clampd.protocol._fields import (
     FiniteFloat,
     Ident,
@@ -237,10 +237,10 @@ class Curve(OutboundModel):
         bad columns (the caller's fault).
         """
         if not 2 <= max_points <= MAX_CURVE_POINTS:
-            raise ValueError(f"max_points must be in 2..{MAX_CURVE_POINTS}, got {max_points}")
+            raise DownsampleError(f"max_points must be in 2..{MAX_CURVE_POINTS}, got {max_points}")
         n = len(t_s)
         if len(angle_deg) != n or len(torque_nm) != n:
-            raise ValueError("t_s, angle_deg and torque_nm must have the same length")
+            raise DownsampleError("t_s, angle_deg and torque_nm must have the same length")
         idx = lttb_indices(angle_deg, torque_nm, max_points)
         t, a, q = take(idx, t_s, angle_deg, torque_nm)
         return cls(
@@ -306,7 +306,7 @@ class Selection(OutboundModel):
     program_id: Ident
     program_version: int = Field(ge=1)
     part_id: PartId
-    joint_positions: list[Ident] = Field(min_length=1, max_length=64)
+    joint_positions: list[Ident] = Field(min_length=1, max_length=MAX_JOINT_POSITIONS)
     next_position: Ident | None = Field(description="null when every position is done.")
 
 

@@ -50,7 +50,15 @@ from clampd.protocol._payloads import (
     WrenchStatus,
 )
 
-__all__ = ["TOPIC_TABLE", "Route", "TopicError", "TopicSpec", "Topics", "check_topic_name"]
+__all__ = [
+    "TOPIC_TABLE",
+    "Route",
+    "TopicError",
+    "TopicSpec",
+    "Topics",
+    "UnknownCommandError",
+    "check_topic_name",
+]
 
 # MQTT 5.0 §1.5.4: a UTF-8 string is at most 65 535 bytes.
 _MAX_TOPIC_BYTES = 65_535
@@ -60,6 +68,10 @@ _FIELD_RE = re.compile(r"\{([a-z_]+)\}")
 
 class TopicError(ValueError):
     """A topic or prefix is malformed, or a topic lies outside this station's tree."""
+
+
+class UnknownCommandError(TopicError):
+    """A topic under this station's command branch names no command the station knows."""
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -274,11 +286,13 @@ class Topics:
         if not topic.startswith(self._command_root):
             raise TopicError(f"topic {topic!r} is not under {self._command_root!r}")
         tail = topic[len(self._command_root) :]
+        if not tail or "/" in tail:
+            raise TopicError(f"topic {topic!r} is not one level below {self._command_root!r}")
         try:
             return CommandName(tail)
         except ValueError:
             known = ", ".join(c.value for c in CommandName)
-            raise TopicError(f"unknown command {tail!r} (known: {known})") from None
+            raise UnknownCommandError(f"unknown command {tail!r} (known: {known})") from None
 
     def is_own_topic(self, topic: str) -> bool:
         """True when ``topic`` lies in this station's tree (at or below the prefix)."""

@@ -170,3 +170,18 @@ def test_bad_columns_raise_a_typed_error(
 
 def test_two_points_out_are_the_endpoints() -> None:
     assert lttb_indices([0.0, 5.0, 1.0, 2.0], [0.0, 9.0, 1.0, 2.0], 2).tolist() == [0, 3]
+
+
+@pytest.mark.parametrize(
+    ("columns", "max_points", "message"),
+    [
+        (([0.0, 1.0], [0.0, 1.0], [0.0]), 256, "same length"),
+        (([0.0, 1.0], [0.0, 1.0], [0.0, 1.0]), 1, "max_points"),
+        (([0.0, 1.0], [0.0, 1.0], [0.0, 1.0]), 5000, "max_points"),
+    ],
+)
+def test_curve_from_bad_samples_raises_a_typed_error(
+    columns: tuple[list[float], list[float], list[float]], max_points: int, message: str
+) -> None:
+    with pytest.raises(DownsampleError, match=message):
+        Curve.from_samples(*columns, max_points=max_points)

@@ -166,7 +166,6 @@ def test_route_refuses_a_command() -> None:
     [
         f"{PREFIX}/cmdx/lock",
         f"{PREFIX}/cmd/lock/extra",
-        f"{PREFIX}/cmd/launch",
         f"{PREFIX}x/cmd/lock",
         "other/plant/cmd/lock",
         f"{PREFIX}/cmd/",
@@ -346,6 +345,14 @@ def test_bad_commands_get_a_typed_error(name: CommandName, payload: bytes, code:
     assert _code(name, payload) == ErrorCode(code)
 
 
+def test_unknown_command_under_the_command_branch() -> None:
+    with pytest.raises(CommandError) as info:
+        parse_command(TOPICS, f"{PREFIX}/cmd/launch", b'{"schema_version":"1"}')
+    assert info.value.code is ErrorCode.UNKNOWN_COMMAND
+    assert info.value.command is None
+    assert "launch" in info.value.text
+
+
 def test_bad_response_topic_property_is_refused() -> None:
     props = CommandProperties(response_topic=f"{PREFIX}/status", correlation_data=b"\x01")
     assert _code(CommandName.PING, b'{"schema_version":"1"}', props) is ErrorCode.BAD_REPLY_TOPIC
@@ -500,7 +507,7 @@ def test_arbitrary_json_only_raises_command_error(
 def test_arbitrary_topics_only_raise_command_error(topic: str, payload: bytes) -> None:
     outcome = _outcome(topic, payload)
     assert isinstance(outcome, CommandError)  # no random text is one of our command topics
-    assert outcome.code is ErrorCode.BAD_TOPIC
+    assert outcome.code in {ErrorCode.BAD_TOPIC, ErrorCode.UNKNOWN_COMMAND}
     assert outcome.reply.topic == TOPICS.reply_default()
 
 
