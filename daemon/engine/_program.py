@@ -230,13 +230,15 @@ def parse_program(toml_text: str) -> Program:
         doc = tomllib.loads(toml_text)
     except tomllib.TOMLDecodeError as exc:
         raise ProgramError([("(file)", f"not valid TOML: {exc}")]) from None
-    extra = sorted(k for k in doc if k != "program")
-    if extra:
-        raise ProgramError(
-            [(k, "unknown top-level key (a program file holds one [program])") for k in extra]
-        )
+    problems = [
+        (k, "unknown top-level key (a program file holds one [program])")
+        for k in sorted(doc)
+        if k != "program"
+    ]
     if "program" not in doc:
-        raise ProgramError([("program", "missing [program] table")])
+        problems.append(("program", "missing [program] table"))
+    if problems:
+        raise ProgramError(problems)
     table = doc["program"]
     if not isinstance(table, dict):
         raise ProgramError([("program", "must be a table, not a list or value")])
