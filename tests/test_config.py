@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import grp
 import tomllib
 from pathlib import Path
 
@@ -216,6 +217,35 @@ def test_inline_password_in_a_readable_file_warns(tmp_path: Path) -> None:
     assert loaded.config.broker.read_password() == "s3cret"
     loose.chmod(0o600)
     assert not any("password" in w for w in load_config(loose, env={}, today=TODAY).warnings)
+
+
+def test_password_from_the_environment_does_not_blame_the_file(tmp_path: Path) -> None:
+    loose = _write(tmp_path, MINIMAL, 0o644)
+    loaded = load_config(loose, env={"CLAMPD__BROKER__PASSWORD": "from-env"}, today=TODAY)
+    assert loaded.config.broker.read_password() == "from-env"
+    assert not any("password" in w for w in loaded.warnings)
+
+
+def test_group_read_is_fine_only_for_the_service_group(tmp_path: Path) -> None:
+    # deploy/BOARD.md installs secrets root:clampd 0640; any other readable group warns.
+    key = tmp_path / "st.key"
+    key.write_text("k")
+    key.chmod(0o640)
+    for name in ("ca.crt", "st.crt"):
+        (tmp_path / name).write_text("c")
+    text = MINIMAL.replace("mqtt://127.0.0.1:1883", "mqtts://127.0.0.1:8883").replace(
+        "[broker]\n", '[broker]\ntls_ca = "ca.crt"\ntls_cert = "st.crt"\ntls_key = "st.key"\n'
+    )
+    path = _write(tmp_path, text)
+    own_group = grp.getgrgid(key.stat().st_gid).gr_name
+    other = "clampd" if own_group != "clampd" else "nobody-group"
+    warned = load_config(path, env={}, today=TODAY, service_group=other).warnings
+    assert any(f"readable by group {own_group!r}" in w for w in warned)
+    quiet = load_config(path, env={}, today=TODAY, service_group=own_group).warnings
+    assert not any("tls_key" in w for w in quiet)
+    key.chmod(0o604)
+    still = load_config(path, env={}, today=TODAY, service_group=own_group).warnings
+    assert any("tls_key" in w and "readable by others" in w for w in still)
 
 
 def test_password_file_is_read_relative_to_the_config(tmp_path: Path) -> None:

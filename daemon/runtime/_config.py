@@ -29,6 +29,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import enum
+import grp
 import ipaddress
 import os
 import re
@@ -47,6 +48,7 @@ from clampd.protocol import Kind, UnitError, parse_quantity
 __all__ = [
     "CALIBRATION_DUE_SOON_DAYS",
     "ENV_PREFIX",
+    "SERVICE_GROUP",
     "BrokerConfig",
     "CalibrationState",
     "ConfigError",
@@ -67,6 +69,8 @@ __all__ = [
 ]
 
 ENV_PREFIX = "CLAMPD__"
+# The system group the daemon runs in (deploy/BOARD.md); it may read secret files.
+SERVICE_GROUP = "clampd"
 # Warn two weeks ahead of a calibration due date, so a replacement tool or a calibration
 # slot can be arranged (common practice, no source).
 CALIBRATION_DUE_SOON_DAYS = 14
@@ -510,25 +514,56 @@ def _check_files(config: StationConfig) -> list[ConfigProblem]:
     return problems
 
 
-def _readable_by_others(p: Path) -> bool:
+def _exposure(p: Path, service_group: str) -> str | None:
+    """Who besides the owner can reach a secret file, or None when nobody should worry.
+
+    Group read is accepted only for the dedicated service group (deploy/BOARD.md installs
+    secrets as root:clampd 0640 so the unprivileged daemon can read them); any other group,
+    and anyone else, is a leak.
+    """
     try:
-        return bool(p.stat().st_mode & (stat.S_IRWXG | stat.S_IRWXO))
+        st = p.stat()
     except OSError:
-        return False
+        return None
+    if st.st_mode & stat.S_IRWXO:
+        return "others"
+    if st.st_mode & (stat.S_IWGRP | stat.S_IXGRP):
+        return "its group (write)"
+    if st.st_mode & stat.S_IRGRP:
+        try:
+            group = grp.getgrgid(st.st_gid).gr_name
+        except KeyError:
+            group = str(st.st_gid)
+        if group != service_group:
+            return f"group {group!r}"
+    return None
 
 
-def _warnings(config: StationConfig, path: Path | None, today: dt.date) -> list[str]:
+def _warnings(
+    config: StationConfig,
+    path: Path | None,
+    today: dt.date,
+    *,
+    file_has_password: bool,
+    service_group: str,
+) -> list[str]:
     warnings: list[str] = []
     b = config.broker
-    if path is not None and b.password is not None and _readable_by_others(path):
-        warnings.append(
-            f"{path} holds broker.password and is readable by group/others: "
-            f"chmod 600 it, or move the secret to password_file"
-        )
+    if path is not None and file_has_password:
+        who = _exposure(path, service_group)
+        if who is not None:
+            warnings.append(
+                f"{path} holds broker.password and is readable by {who}: chmod 600 it "
+                f"(or 640 with group {service_group}), or move the secret to password_file"
+            )
     for key in ("password_file", "tls_key"):
         p: Path | None = getattr(b, key)
-        if p is not None and _readable_by_others(p):
-            warnings.append(f"broker.{key} {p} is readable by group/others: chmod 600 it")
+        who = None if p is None else _exposure(p, service_group)
+        if who is not None:
+            warnings.append(
+                f"broker.{key} {p} is readable by {who}: chmod 600 it "
+                f"(or 640 with group {service_group})"
+            )
     if b.tls and b.tls_ca is None:
         warnings.append("broker.tls_ca is not set: the system CA store will verify the broker")
     levels = config.station.topic_prefix.split("/")
@@ -563,13 +598,15 @@ def parse_config(
     config_path: Path | None = None,
     today: dt.date | None = None,
     check_files: bool = True,
+    service_group: str = SERVICE_GROUP,
 ) -> LoadedConfig:
     """Validate TOML ``text`` (with environment overrides) into a ``LoadedConfig``.
 
     ``env`` defaults to ``os.environ``; pass ``{}`` to ignore it. Relative file paths are
     taken relative to ``base_dir`` (default: the working directory). ``check_files=False``
     skips the existence checks of referenced files (validating a board's config on a
-    workstation). Raises ``ConfigError`` with every problem found.
+    workstation). ``service_group`` may read secret files without a warning. Raises
+    ``ConfigError`` with every problem found.
     """
     try:
         data = tomllib.loads(text)
@@ -577,6 +614,8 @@ def parse_config(
         raise ConfigError(
             [ConfigProblem(path="", message=f"not valid TOML: {exc}")], source
         ) from None
+    broker_raw = data.get("broker")
+    file_has_password = isinstance(broker_raw, dict) and "password" in broker_raw
     apply_env_overrides(data, os.environ if env is None else env)
     _resolve_paths(data, base_dir or Path.cwd())
     try:
@@ -586,7 +625,13 @@ def parse_config(
     problems = (_check_files(config) if check_files else []) + _check_programs(config)
     if problems:
         raise ConfigError(problems, source)
-    warnings = _warnings(config, config_path, today or dt.date.today())
+    warnings = _warnings(
+        config,
+        config_path,
+        today or dt.date.today(),
+        file_has_password=file_has_password,
+        service_group=service_group,
+    )
     return LoadedConfig(config=config, path=config_path, warnings=tuple(warnings))
 
 
@@ -596,6 +641,7 @@ def load_config(
     env: Mapping[str, str] | None = None,
     today: dt.date | None = None,
     check_files: bool = True,
+    service_group: str = SERVICE_GROUP,
 ) -> LoadedConfig:
     """Read and validate the station file at ``path`` (see ``parse_config``).
 
@@ -614,4 +660,5 @@ def load_config(
         config_path=p,
         today=today,
         check_files=check_files,
+        service_group=service_group,
     )
