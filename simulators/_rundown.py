@@ -37,9 +37,13 @@ CueListener = Callable[[Reading], CuePattern | None]
 """Called after every sample with what the sensor reported; may return a cue to play."""
 
 
-@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True, eq=False)
 class Trace:
-    """One rundown: the measured sample stream (sensor time) and the truth behind it."""
+    """One rundown: the measured sample stream (sensor time) and the truth behind it.
+
+    Compared by identity (arrays have no single truth value); compare ``csv_text()`` or the
+    arrays themselves.
+    """
 
     t_s: npt.NDArray[np.float64]  # sensor clock, s, first sample at 0
     torque_nm: npt.NDArray[np.float64]  # measured (quantised) torque

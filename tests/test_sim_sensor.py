@@ -47,6 +47,7 @@ from clampd.simulators import (
     VirtualWrenchSensor,
     encode_control,
     encode_frame,
+    simulate_rundown,
 )
 
 
@@ -457,3 +458,26 @@ def test_declarative_encoder_refuses_what_it_cannot_follow() -> None:
         DeclarativeEncoder(text.replace('type = "i32"', 'type = "i24"'))
     with pytest.raises(EncodeError, match="TOML"):
         DeclarativeEncoder("name = ")
+
+
+def test_torque_non_linearity_is_a_bow_of_the_stated_height() -> None:
+    """Zero at 0 and at capacity, largest (nl·capacity) at half capacity (common practice)."""
+    nl, cap = 0.01, 100.0
+    tr = simulate_rundown(
+        JointModel.sample(np.random.default_rng(5)),
+        SensorParams(
+            torque_max_nm=cap,
+            nonlinearity_fraction=nl,
+            torque_noise_nm=0.0,
+            zero_offset_nm=0.0,
+            torque_scale=0.004,
+        ),
+        OperatorParams(ignore_cues=True, stop_at_torque_nm=60.0),
+        np.random.default_rng(6),
+    )
+    error = tr.torque_nm - tr.true_torque_nm
+    half = np.abs(tr.true_torque_nm - cap / 2.0) < 0.5
+    assert half.any()
+    np.testing.assert_allclose(error[half], nl * cap, atol=0.0025)  # half a count
+    small = tr.true_torque_nm < 1.0
+    assert np.abs(error[small]).max() <= nl * cap * 4 * 0.01 + 0.0025
