@@ -173,7 +173,7 @@ class _Rundown:
         self.T: FloatArray = np.empty(cap)
         self.th: FloatArray = np.empty(cap)
         self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
-        self.P: FloatArray = np.zeros((cap + 1, 6))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT, ΣT²
+        self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
         self.n = 0
         # accumulation state
         self.turning = False
@@ -207,8 +207,8 @@ class _Rundown:
             new = np.empty(cap, dtype=old.dtype)
             new[: self.n] = old[: self.n]
             setattr(self, name, new)
-        P = np.zeros((cap + 1, 6))
-        P[: self.n + 1] = self.P[: self.n + 1]
+        P = np.zeros((5, cap + 1))
+        P[:, : self.n + 1] = self.P[:, : self.n + 1]
         self.P = P
 
 
@@ -299,7 +299,13 @@ class Engine:
         m = t.shape[0]
         if m == 0:
             return []
-        for name, a in (("t_s", t), ("torque_nm", T), ("rate_dps", r)):
+        chk = t + T
+        chk += r
+        # one reduction in the common case; the per-column search only when something is off
+        # (an overflowing but finite sum falls through the search harmlessly)
+        for name, a in (
+            () if math.isfinite(chk.sum()) else (("t_s", t), ("torque_nm", T), ("rate_dps", r))
+        ):
             ok = np.isfinite(a)
             if not ok.all():
                 k = _first(~ok)
@@ -479,8 +485,16 @@ class Engine:
         )
 
     # ---- pass 1: accumulate
-    def _turning(self, R: _Rundown, rc: FloatArray, T: FloatArray, n0: int) -> BoolArray:
+    def _turning(self, R: _Rundown, rc: FloatArray, T: FloatArray, n0: int) -> BoolArray | bool:
+        """Which samples turn the fastener; ``True``/``False`` when all or none do."""
         m = rc.shape[0]
+        # fast paths: the whole frame inside one stroke, or wholly outside one
+        if R.turning:
+            if rc.min() > 0.0:
+                R.stroke_peak = max(R.stroke_peak, float(T.max()))
+                return True
+        elif not bool(((rc > 0.0) & (self._p.resume * R.resume_level <= T)).any()):
+            return False
         out = np.empty(m, dtype=np.bool_)
         p = 0
         while p < m:
@@ -508,18 +522,20 @@ class Engine:
 
     def _accumulate(
         self, R: _Rundown, t: FloatArray, T: FloatArray, r: FloatArray
-    ) -> tuple[FloatArray, FloatArray]:
+    ) -> tuple[FloatArray, FloatArray | None]:
+        """Pass 1; returns the sample intervals and, when torque fell below the release level
+        somewhere in the frame, the time each sample last saw torque at or above it."""
         P_ = self._p
         m = t.shape[0]
         n0 = R.n
         R.reserve(n0 + m)
-        rc = r - R.bias
+        rc = r - R.bias if R.bias != 0.0 else r
         if n0 == 0:
             R.prev_t, R.prev_T, R.prev_rc = float(t[0]), float(T[0]), float(rc[0])
-        tp = np.empty(m)
-        tp[0] = R.prev_t
-        tp[1:] = t[:-1]
-        dt = t - tp
+        tt = np.empty(m + 1)
+        tt[0] = R.prev_t
+        tt[1:] = t
+        dt = tt[1:] - tt[:-1]
         turn = self._turning(R, rc, T, n0)
         if R.snug is None:
             k = _first(P_.snug <= T)
@@ -530,54 +546,76 @@ class Engine:
         R.turn[n0 : n0 + m] = turn
         if R.snug is None or R.snug >= n0 + m:
             R.th[n0 : n0 + m] = 0.0
-            R.P[n0 + 1 : n0 + m + 1] = R.P[n0]
+            if P_.watch_yield:
+                R.P[:, n0 + 1 : n0 + m + 1] = R.P[:, n0 : n0 + 1]
         else:
             s = R.snug - n0  # may be negative: snug in an earlier frame
-            rcp = np.empty(m)
-            rcp[0] = R.prev_rc
-            rcp[1:] = rc[:-1]
-            trap = 0.5 * (rcp + rc) * dt
+            rr = np.empty(m + 1)
+            rr[0] = R.prev_rc
+            rr[1:] = rc
+            trap = (rr[1:] + rr[:-1]) * 0.5 * dt
             if P_.defl != 0.0:
-                Tp = np.empty(m)
-                Tp[0] = R.prev_T
-                Tp[1:] = T[:-1]
-                trap = trap - P_.defl * (T - Tp)
+                TT = np.empty(m + 1)
+                TT[0] = R.prev_T
+                TT[1:] = T
+                trap = trap - P_.defl * (TT[1:] - TT[:-1])
             # an interval counts when the fastener turned at either end of it (the trapezoid
             # of a stroke's last interval, rate falling to zero, is rotation too)
-            counted = turn.copy()
-            counted[0] |= R.turn_last
-            counted[1:] |= turn[:-1]
-            inc = np.where(counted, np.maximum(trap, 0.0), 0.0)
-            w = turn.astype(np.float64)
-            if s >= 0:
-                inc[: s + 1] = 0.0  # angle is 0 at snug and counts from the next sample
-                w[:s] = 0.0
             acc = np.empty(m + 1)
             acc[0] = R.theta_last
-            acc[1:] = inc
+            if turn is True and R.turn_last:
+                np.maximum(trap, 0.0, out=acc[1:])
+            elif turn is False and not R.turn_last:
+                acc[1:] = 0.0
+            else:
+                tb = np.empty(m + 1, dtype=np.bool_)
+                tb[0] = R.turn_last
+                tb[1:] = turn
+                np.copyto(acc[1:], np.where(tb[1:] | tb[:-1], np.maximum(trap, 0.0), 0.0))
+            if s >= 0:
+                acc[1 : s + 2] = 0.0  # angle is 0 at snug and counts from the next sample
             th = np.cumsum(acc)[1:]
             R.th[n0 : n0 + m] = th
-            vals = np.empty((m + 1, 6))
-            vals[0] = R.P[n0]
-            wth = w * th
-            wT = w * T
-            vals[1:, 0] = w
-            vals[1:, 1] = wth
-            vals[1:, 2] = wT
-            vals[1:, 3] = wth * th
-            vals[1:, 4] = wth * T
-            vals[1:, 5] = wT * T
-            R.P[n0 + 1 : n0 + m + 1] = np.cumsum(vals, axis=0)[1:]
             R.theta_last = float(th[-1])
+            if P_.watch_yield:
+                self._prefix(R, n0=n0, m=m, s=s, turn=turn, th=th, T=T)
         R.prev_t, R.prev_T, R.prev_rc = float(t[-1]), float(T[-1]), float(rc[-1])
-        R.turn_last = bool(turn[-1])
+        R.turn_last = bool(turn if isinstance(turn, bool) else turn[-1])
+        R.n = n0 + m
+        if T.min() >= P_.release:  # active throughout: the timeout cannot run in this frame
+            R.last_active_t = float(t[-1])
+            return dt, None
         la_in = np.empty(m + 1)
         la_in[0] = R.last_active_t
         la_in[1:] = np.where(P_.release <= T, t, -np.inf)
         la = np.maximum.accumulate(la_in)[1:]
         R.last_active_t = float(la[-1])
-        R.n = n0 + m
         return dt, la
+
+    @staticmethod
+    def _prefix(
+        R: _Rundown,
+        *,
+        n0: int,
+        m: int,
+        s: int,
+        turn: BoolArray | bool,
+        th: FloatArray,
+        T: FloatArray,
+    ) -> None:
+        """Running sums n, Σθ, ΣT, Σθ², ΣθT of the turning samples from snug on."""
+        vals = np.empty((5, m + 1))
+        vals[:, 0] = R.P[:, n0]
+        w = vals[0, 1:]
+        w[:] = turn
+        if s > 0:
+            w[:s] = 0.0
+        np.multiply(w, th, out=vals[1, 1:])
+        np.multiply(w, T, out=vals[2, 1:])
+        np.multiply(vals[1, 1:], th, out=vals[3, 1:])
+        np.multiply(vals[1, 1:], T, out=vals[4, 1:])
+        np.cumsum(vals, axis=1, out=vals)
+        R.P[:, n0 + 1 : n0 + m + 1] = vals[:, 1:]
 
     # ---- pass 2: decide
     def _slopes(
@@ -588,8 +626,8 @@ class Engine:
         idx = np.arange(n0 + p, n0 + m)
         th = R.th[n0 + p : n0 + m]
         lo = np.searchsorted(R.th[: n0 + m], th - P_.window, side="left")
-        S = R.P[idx + 1] - R.P[lo]
-        n, sx, sy, sxx, sxy = S[:, 0], S[:, 1], S[:, 2], S[:, 3], S[:, 4]
+        S = R.P[:, idx + 1] - R.P[:, lo]
+        n, sx, sy, sxx, sxy = S[0], S[1], S[2], S[3], S[4]
         den = n * sxx - sx * sx
         valid = R.turn[n0 + p : n0 + m] & (th >= P_.window) & (n >= _MIN_FIT_POINTS) & (den > 0.0)
         slope = np.full(m - p, np.nan)
@@ -691,7 +729,8 @@ class Engine:
                     take(p + _first(R.th[n0 + p : n0 + m] - R.step_base >= spec.target), "step")
             if state is State.HOLDING:
                 take(p + _first(T[p:] < P_.release), "release")
-            take(p + _first(t[p:] - la[p:] > P_.timeout), "timeout")
+            if la is not None:
+                take(p + _first(t[p:] - la[p:] > P_.timeout), "timeout")
 
             if M is not None:
                 # running maximum of the slope through the sample handled now (or the frame end)
@@ -903,14 +942,17 @@ class Engine:
             else:
                 end_angle = final_th
             ie = int(np.searchsorted(th, end_angle, side="right")) - 1
-            S = R.P[ie + 1] - R.P[0]
-            cnt, sx, sy, sxx, sxy, syy = (float(v) for v in S)
-            dx = cnt * sxx - sx * sx
-            dy = cnt * syy - sy * sy
-            if cnt >= _MIN_FIT_POINTS and dx > 0.0:
-                rate = (cnt * sxy - sx * sy) / dx
-                r2 = ((cnt * sxy - sx * sy) ** 2) / (dx * dy) if dy > 0.0 else 1.0
-                r2 = min(max(r2, 0.0), 1.0)
+            sel = R.turn[R.snug : ie + 1]
+            x = th[R.snug : ie + 1][sel]
+            y = T[R.snug : ie + 1][sel]
+            if x.shape[0] >= _MIN_FIT_POINTS:
+                dx_ = x - x.mean()
+                dy_ = y - y.mean()
+                sxx, sxy, syy = float(dx_ @ dx_), float(dx_ @ dy_), float(dy_ @ dy_)
+                if sxx > 0.0:
+                    rate = sxy / sxx
+                    r2 = sxy * sxy / (sxx * syy) if syy > 0.0 else 1.0
+                    r2 = min(max(r2, 0.0), 1.0)
         res = RundownResult(
             status=Status.NOK if uniq else Status.OK,
             reasons=uniq,
