@@ -621,20 +621,24 @@ class Engine:
     def _slopes(
         self, R: _Rundown, n0: int, p: int, m: int
     ) -> tuple[FloatArray, FloatArray, BoolArray]:
-        """Windowed LS slope, its running max (seeded), and validity, for chunk[p:m]."""
+        """Windowed LS slope (-inf where invalid), its running max seeded with the carried one,
+        and validity, for chunk[p:m]."""
         P_ = self._p
-        idx = np.arange(n0 + p, n0 + m)
-        th = R.th[n0 + p : n0 + m]
-        lo = np.searchsorted(R.th[: n0 + m], th - P_.window, side="left")
-        S = R.P[:, idx + 1] - R.P[:, lo]
-        n, sx, sy, sxx, sxy = S[0], S[1], S[2], S[3], S[4]
-        den = n * sxx - sx * sx
-        valid = R.turn[n0 + p : n0 + m] & (th >= P_.window) & (n >= _MIN_FIT_POINTS) & (den > 0.0)
-        slope = np.full(m - p, np.nan)
-        np.divide(n * sxy - sx * sy, den, out=slope, where=valid)
+        a, b = n0 + p, n0 + m
+        th = R.th[a:b]
+        lo = np.searchsorted(R.th[:b], th - P_.window, side="left")
+        S = R.P[:, a + 1 : b + 1] - R.P[:, lo]
+        n, sx, sy, sxx, sxy = S
+        den = n * sxx
+        den -= sx * sx
+        num = n * sxy
+        num -= sx * sy
+        valid = R.turn[a:b] & (th >= P_.window) & (n >= _MIN_FIT_POINTS) & (den > 0.0)
         seed = np.empty(m - p + 1)
         seed[0] = R.slope_max
-        seed[1:] = np.where(valid, slope, -np.inf)
+        slope = seed[1:]
+        slope.fill(-np.inf)
+        np.divide(num, den, out=slope, where=valid)
         M = np.maximum.accumulate(seed)[1:]
         return slope, M, valid
 
@@ -666,6 +670,8 @@ class Engine:
         m = t.shape[0]
         dt, la = self._accumulate(R, t, T, r)
         base = R.start_index + n0  # global index of chunk position 0
+        # no slope window lies wholly past snug anywhere in this frame: no slope to compute
+        slopes_possible = bool(R.th[n0 + m - 1] >= P_.window)
         p = 0
         while p < m:
             state = self._state
@@ -686,7 +692,7 @@ class Engine:
                     g0 = max(p, R.snug - n0 + 1)
                     if g0 < m:
                         take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
-                if P_.watch_yield and R.yield_point is None:
+                if P_.watch_yield and R.yield_point is None and slopes_possible:
                     slope, M, valid = self._slopes(R, n0, p, m)
                     thc = R.th[n0 + p : n0 + m]
                     ycond = valid & (thc >= P_.min_angle) & (M > 0.0) & (slope <= P_.fraction * M)
@@ -697,7 +703,7 @@ class Engine:
                 need_stop = (CueKind.STOP, R.step) not in R.fired
                 if cue_ok and (need_app or need_stop):
                     if spec.kind == _YIELD:
-                        if state is State.TIGHTENING and need_app:
+                        if state is State.TIGHTENING and need_app and slopes_possible:
                             if slope is None:
                                 slope, M, valid = self._slopes(R, n0, p, m)
                             thc = R.th[n0 + p : n0 + m]
@@ -718,7 +724,7 @@ class Engine:
                             )
                         if need_stop:
                             take(p + _first(v + rate * P_.h_stop >= spec.target), "cue_stop")
-            if not R.over and state is not State.IDLE:
+            if not R.over and P_.max_torque != math.inf:
                 take(p + _first(T[p:] >= P_.max_torque), "over")
             if state is State.RUNDOWN and R.snug is not None and R.snug - n0 >= p:
                 take(R.snug - n0, "snug")
