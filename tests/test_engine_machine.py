@@ -13,34 +13,34 @@ import pytest
 
 from clampd.daemon.engine import EngineUsageError, Input, State, next_state
 
-I, S = Input, State
+In, S = Input, State
 EXPECTED: dict[tuple[State, Input], State] = {
-    (S.IDLE, I.START): S.RUNDOWN,
-    (S.IDLE, I.SELECT_PROGRAM): S.IDLE,
-    (S.IDLE, I.LINK_LOST): S.IDLE,
-    (S.IDLE, I.ABORT): S.IDLE,
-    (S.IDLE, I.TIMEOUT): S.IDLE,
-    (S.RUNDOWN, I.SNUG): S.TIGHTENING,
-    (S.RUNDOWN, I.OVER_TORQUE): S.HOLDING,
-    (S.RUNDOWN, I.TIMEOUT): S.IDLE,
-    (S.RUNDOWN, I.LINK_LOST): S.IDLE,
-    (S.RUNDOWN, I.ABORT): S.IDLE,
-    (S.RUNDOWN, I.ENGINE_ERROR): S.IDLE,
-    (S.TIGHTENING, I.STEP): S.TIGHTENING,
-    (S.TIGHTENING, I.STOP): S.HOLDING,
-    (S.TIGHTENING, I.OVER_TORQUE): S.HOLDING,
-    (S.TIGHTENING, I.DATA_GAP): S.IDLE,
-    (S.TIGHTENING, I.TIMEOUT): S.IDLE,
-    (S.TIGHTENING, I.LINK_LOST): S.IDLE,
-    (S.TIGHTENING, I.ABORT): S.IDLE,
-    (S.TIGHTENING, I.ENGINE_ERROR): S.IDLE,
-    (S.HOLDING, I.RELEASE): S.IDLE,
-    (S.HOLDING, I.OVER_TORQUE): S.HOLDING,
-    (S.HOLDING, I.DATA_GAP): S.IDLE,
-    (S.HOLDING, I.TIMEOUT): S.IDLE,
-    (S.HOLDING, I.LINK_LOST): S.IDLE,
-    (S.HOLDING, I.ABORT): S.IDLE,
-    (S.HOLDING, I.ENGINE_ERROR): S.IDLE,
+    (S.IDLE, In.START): S.RUNDOWN,
+    (S.IDLE, In.SELECT_PROGRAM): S.IDLE,
+    (S.IDLE, In.LINK_LOST): S.IDLE,
+    (S.IDLE, In.ABORT): S.IDLE,
+    (S.IDLE, In.TIMEOUT): S.IDLE,
+    (S.RUNDOWN, In.SNUG): S.TIGHTENING,
+    (S.RUNDOWN, In.OVER_TORQUE): S.HOLDING,
+    (S.RUNDOWN, In.TIMEOUT): S.IDLE,
+    (S.RUNDOWN, In.LINK_LOST): S.IDLE,
+    (S.RUNDOWN, In.ABORT): S.IDLE,
+    (S.RUNDOWN, In.ENGINE_ERROR): S.IDLE,
+    (S.TIGHTENING, In.STEP): S.TIGHTENING,
+    (S.TIGHTENING, In.STOP): S.HOLDING,
+    (S.TIGHTENING, In.OVER_TORQUE): S.HOLDING,
+    (S.TIGHTENING, In.DATA_GAP): S.IDLE,
+    (S.TIGHTENING, In.TIMEOUT): S.IDLE,
+    (S.TIGHTENING, In.LINK_LOST): S.IDLE,
+    (S.TIGHTENING, In.ABORT): S.IDLE,
+    (S.TIGHTENING, In.ENGINE_ERROR): S.IDLE,
+    (S.HOLDING, In.RELEASE): S.IDLE,
+    (S.HOLDING, In.OVER_TORQUE): S.HOLDING,
+    (S.HOLDING, In.DATA_GAP): S.IDLE,
+    (S.HOLDING, In.TIMEOUT): S.IDLE,
+    (S.HOLDING, In.LINK_LOST): S.IDLE,
+    (S.HOLDING, In.ABORT): S.IDLE,
+    (S.HOLDING, In.ENGINE_ERROR): S.IDLE,
 }
 
 
@@ -59,5 +59,5 @@ def test_every_pair_is_documented_or_refused(state: State, inp: Input) -> None:
 
 def test_every_active_state_can_end() -> None:
     for state in (S.RUNDOWN, S.TIGHTENING, S.HOLDING):
-        for inp in (I.LINK_LOST, I.ABORT, I.TIMEOUT, I.ENGINE_ERROR):
+        for inp in (In.LINK_LOST, In.ABORT, In.TIMEOUT, In.ENGINE_ERROR):
             assert next_state(state, inp) is S.IDLE
