@@ -254,7 +254,6 @@ class Engine:
         self._armed = True
         self._r: _Rundown | None = None
         self._rest_t: FloatArray = np.empty(0)
-        self._rest_T: FloatArray = np.empty(0)
         self._rest_r: FloatArray = np.empty(0)
 
     # ----------------------------------------------------------------- read-only surface
@@ -460,22 +459,27 @@ class Engine:
         return None if k == m else k
 
     def _keep_rest(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
+        """Keep the idle samples taken at rest (the only ones that show the gyro's bias)."""
         if t.shape[0] == 0:
             return
-        self._rest_t = np.concatenate((self._rest_t, t))[-_REST_CAPACITY:]
-        self._rest_T = np.concatenate((self._rest_T, T))[-_REST_CAPACITY:]
-        self._rest_r = np.concatenate((self._rest_r, r))[-_REST_CAPACITY:]
+        s = self._settings
+        rest = (np.abs(r) < s.rest_rate_dps) & (np.abs(T) < s.rest_torque_nm)
+        if not rest.any():
+            return
+        self._rest_t = np.concatenate((self._rest_t, t[rest]))[-_REST_CAPACITY:]
+        self._rest_r = np.concatenate((self._rest_r, r[rest]))[-_REST_CAPACITY:]
 
     def _start(self, index: int, t0: float, T0: float, events: list[Event]) -> None:
         s = self._settings
-        sel = (
-            (self._rest_t >= t0 - s.bias_window_s)
-            & (np.abs(self._rest_r) < s.rest_rate_dps)
-            & (np.abs(self._rest_T) < s.rest_torque_nm)
-        )
-        count = int(sel.sum())
-        bias = float(np.mean(self._rest_r[sel])) if count >= s.bias_min_samples else 0.0
-        self._rest_t = self._rest_T = self._rest_r = np.empty(0)
+        bias = 0.0
+        if self._rest_t.shape[0]:
+            # the latest stretch of rest, however long the free run-in since (up to a max age)
+            newest = float(self._rest_t[-1])
+            sel = (self._rest_t >= newest - s.bias_window_s) & (
+                self._rest_t >= t0 - s.bias_max_age_s
+            )
+            if int(sel.sum()) >= s.bias_min_samples:
+                bias = float(np.mean(self._rest_r[sel]))
         self._state = next_state(self._state, Input.START)
         self._r = _Rundown(index, bias, t0, T0)
         events.append(

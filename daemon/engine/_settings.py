@@ -30,10 +30,14 @@ class EngineSettings:
     # 5 deg/s admits them while rejecting deliberate motion (hand rotation is tens of deg/s).
     rest_rate_dps: float = 5.0
     rest_torque_nm: float = 0.5
-    # Gyro bias = mean rate of the at-rest samples in this window before the rundown starts.
+    # Gyro bias = mean rate of the latest at-rest samples spanning this window (the rest before
+    # a free run-in counts too).
     # Our choice: long enough to average noise (≥ 250 samples at 250 Hz), short enough that
     # thermal drift of the bias within it is negligible.
     bias_window_s: float = 1.0
+    # Rest older than this before the rundown starts is not trusted for the bias: MEMS gyro
+    # bias drifts with temperature over minutes (from memory of datasheets); our choice.
+    bias_max_age_s: float = 60.0
     # Fewer at-rest samples than this and the bias is taken as 0 (nothing trustworthy to remove).
     bias_min_samples: int = 10
     # While angle is counted, a hole in the sample times longer than this ends the rundown NOK
@@ -70,6 +74,7 @@ class EngineSettings:
             "rest_rate_dps",
             "rest_torque_nm",
             "bias_window_s",
+            "bias_max_age_s",
             "max_gap_s",
             "cue_rate_window_s",
             "timeout_s",
