@@ -484,3 +484,35 @@ def test_internal_error_poisons_the_rundown(monkeypatch: pytest.MonkeyPatch) -> 
     events = eng.feed(t[cut + 22 :], T[cut + 22 :], r[cut + 22 :])
     assert not of(events, RundownStarted)
     assert not of(events, SnugReached)
+
+
+def test_curve_downsampled_keeps_ends_and_bounds_points() -> None:
+    t, T, r, _ = trace(linear_joint, 30.0, 60.0)
+    res = finished(Engine(prog(strategy="torque", target_torque=40.0)).feed(t, T, r))[0]
+    n = res.curve_t_s.shape[0]
+    assert n > 300
+    ts, tq, ang = res.curve_downsampled(200)
+    assert ts.shape == tq.shape == ang.shape == (200,)
+    assert ts[0] == res.curve_t_s[0]
+    assert ts[-1] == res.curve_t_s[-1]
+    assert np.all(np.diff(ts) > 0)
+    assert np.isin(tq, res.curve_torque_nm).all()
+    assert tq.max() == res.peak_torque_nm  # LTTB keeps the sharp peak of a rundown
+
+
+def test_events_validate_themselves() -> None:
+    with pytest.raises(ValueError, match="invalid event field"):
+        SnugReached(index=-1, t_s=0.0, torque_nm=1.0)
+    with pytest.raises(ValueError, match="invalid event field"):
+        CueFired(kind=CueKind.STOP, step=0, index=3, t_s=1.0, predicted_crossing_t_s=0.5)
+    with pytest.raises(ValueError, match="invalid event field"):
+        OverTorque(index=1, t_s=float("nan"), torque_nm=1.0, limit_nm=2.0)
+
+
+def test_settings_are_validated() -> None:
+    with pytest.raises(EngineUsageError, match="max_gap_s"):
+        EngineSettings(max_gap_s=0.0)
+    with pytest.raises(EngineUsageError, match="resume_fraction"):
+        EngineSettings(resume_fraction=1.5)
+    with pytest.raises(EngineUsageError, match="finite"):
+        EngineSettings(reaction_time_s=float("inf"))

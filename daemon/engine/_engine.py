@@ -335,7 +335,7 @@ class Engine:
         except EngineUsageError:
             raise
         except Exception as exc:  # poison: an internal error must end the rundown NOK
-            self._poison(f"{type(exc).__name__}: {exc}", float(t[-1]), events)
+            self._poison(f"{type(exc).__name__}: {exc}", self._seen + m - 1, float(t[-1]), events)
         self._seen += m
         self._last_t = float(t[-1])
         return events
@@ -387,11 +387,10 @@ class Engine:
         R.reasons.append(reason)
         self._finish(R.n - 1, inp, events)
 
-    def _poison(self, message: str, t_last: float, events: list[Event]) -> None:
+    def _poison(self, message: str, idx_last: int, t_last: float, events: list[Event]) -> None:
         R = self._r
         if R is None or R.n == 0:
-            idx = max(self._seen - 1, 0) if R is None else R.start_index
-            events.append(EngineFault(index=idx, t_s=t_last, message=message))
+            events.append(EngineFault(index=idx_last, t_s=t_last, message=message))
             self._r = None
             self._state = State.IDLE
             self._armed = False

@@ -169,7 +169,10 @@ class Program(BaseModel):
             torques.append(self.target_torque_nm)
             if self.target_torque_nm <= self.snug_torque_nm:
                 problems.append("target_torque: must be above snug_torque")
-        torques += [st.target_torque_nm for st in self.steps if st.target_torque_nm is not None]
+        step_torques = [st.target_torque_nm for st in self.steps if st.target_torque_nm is not None]
+        if any(tq <= self.snug_torque_nm for tq in step_torques):
+            problems.append("step: every torque step must target more than snug_torque")
+        torques += step_torques
         if self.max_torque_nm is not None and self.max_torque_nm <= max(torques):
             problems.append("max_torque: must be above snug_torque and every target torque")
         if self.release_torque_nm is not None and self.release_torque_nm >= self.snug_torque_nm:
