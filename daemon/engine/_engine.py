@@ -675,6 +675,8 @@ class Engine:
         base = R.start_index + n0  # global index of chunk position 0
         # no slope window lies wholly past snug anywhere in this frame: no slope to compute
         slopes_possible = bool(R.th[n0 + m - 1] >= P_.window)
+        gap_possible = bool(dt.max() > P_.max_gap)
+        t_max = float(T.max())
         p = 0
         while p < m:
             state = self._state
@@ -691,7 +693,7 @@ class Engine:
 
             # Candidates in priority order: on a tie the earlier-listed one is handled first.
             if state in (State.TIGHTENING, State.HOLDING):
-                if R.snug is not None:
+                if R.snug is not None and gap_possible:
                     g0 = max(p, R.snug - n0 + 1)
                     if g0 < m:
                         take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
@@ -727,14 +729,17 @@ class Engine:
                             )
                         if need_stop:
                             take(p + _first(v + rate * P_.h_stop >= spec.target), "cue_stop")
-            if not R.over and P_.max_torque != math.inf:
+            if not R.over and t_max >= P_.max_torque:
                 take(p + _first(T[p:] >= P_.max_torque), "over")
             if state is State.RUNDOWN and R.snug is not None and R.snug - n0 >= p:
                 take(R.snug - n0, "snug")
             if state is State.TIGHTENING and spec is not None and spec.kind != _YIELD:
+                # quick refusals: torque never reaches the target in this frame, or the angle
+                # (non-decreasing) has not reached it by the frame's last sample
                 if spec.kind == _TORQUE:
-                    take(p + _first(T[p:] >= spec.target), "step")
-                else:
+                    if t_max >= spec.target:
+                        take(p + _first(T[p:] >= spec.target), "step")
+                elif R.theta_last - R.step_base >= spec.target:
                     take(p + _first(R.th[n0 + p : n0 + m] - R.step_base >= spec.target), "step")
             if state is State.HOLDING:
                 take(p + _first(T[p:] < P_.release), "release")
