@@ -676,6 +676,8 @@ class Engine:
         # no slope window lies wholly past snug anywhere in this frame: no slope to compute
         slopes_possible = bool(R.th[n0 + m - 1] >= P_.window)
         gap_possible = bool(dt.max() > P_.max_gap)
+        # yield is judged only past the minimum angle; the angle never decreases
+        judge_possible = R.theta_last >= P_.min_angle
         t_max = float(T.max())
         p = 0
         while p < m:
@@ -683,8 +685,10 @@ class Engine:
             K = m
             what = ""
             spec = P_.steps[R.step] if R.step < len(P_.steps) else None
-            slope = M = None
-            valid = None
+            slope: FloatArray | None = None
+            M: FloatArray | None = None
+            valid: BoolArray | None = None
+            judge: BoolArray | None = None
 
             def take(k: int, name: str) -> None:
                 nonlocal K, what
@@ -699,9 +703,9 @@ class Engine:
                         take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
                 if P_.watch_yield and R.yield_point is None and slopes_possible:
                     slope, M, valid = self._slopes(R, n0, p, m)
-                    thc = R.th[n0 + p : n0 + m]
-                    ycond = valid & (thc >= P_.min_angle) & (M > 0.0) & (slope <= P_.fraction * M)
-                    take(p + _first(ycond), "yield")
+                    if judge_possible:
+                        judge = valid & (R.th[n0 + p : n0 + m] >= P_.min_angle) & (M > 0.0)
+                        take(p + _first(judge & (slope <= P_.fraction * M)), "yield")
             if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
                 cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
                 need_app = (CueKind.APPROACH, R.step) not in R.fired
@@ -711,16 +715,14 @@ class Engine:
                         if state is State.TIGHTENING and need_app and slopes_possible:
                             if slope is None:
                                 slope, M, valid = self._slopes(R, n0, p, m)
-                            thc = R.th[n0 + p : n0 + m]
                             assert M is not None
                             assert valid is not None
-                            acond = (
-                                valid
-                                & (thc >= P_.min_angle)
-                                & (M > 0.0)
-                                & (slope <= P_.approach_fraction * M)
-                            )
-                            take(p + _first(acond), "cue_approach")
+                            if judge_possible:
+                                if judge is None:
+                                    thc = R.th[n0 + p : n0 + m]
+                                    judge = valid & (thc >= P_.min_angle) & (M > 0.0)
+                                acond = judge & (slope <= P_.approach_fraction * M)
+                                take(p + _first(acond), "cue_approach")
                     else:
                         v, rate, _ = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
                         if need_app:
