@@ -194,3 +194,18 @@ def test_file_ending_mid_rundown_ends_by_timeout(
     assert out["status"] == "NOK"
     assert "timeout" in out["reasons"]
     assert out["end"]["index"] == 1499
+
+
+def test_demo_recording_replays_ok(capsys: pytest.CaptureFixture[str]) -> None:
+    """tests/data/rundown_demo.csv: an invented two-stroke ratchet rundown at 500 Hz (joint
+    2.5 N·m prevailing to 15°, then 1.0 N·m/deg; fastener turned 85°; gyro bias 0.4 deg/s;
+    noise). The true rotation from snug at the final peak is 85° − φ(snug); snug is where the
+    recorded torque first reaches 10 N·m, i.e. φ ≈ 22.5° (closed form, ±noise)."""
+    data = ROOT / "tests" / "data"
+    args = ["replay", "--program", str(data / "program_torque_angle.toml")]
+    assert main([*args, str(data / "rundown_demo.csv"), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["status"] == "OK", out["reasons"]
+    assert out["gyro_bias_dps"] == pytest.approx(0.4, abs=0.05)
+    assert out["final"]["angle_deg"] == pytest.approx(85.0 - 22.5, abs=0.5)
+    assert out["joint_rate_nm_per_deg"] == pytest.approx(1.0, abs=0.02)
