@@ -218,6 +218,8 @@ class Curve(OutboundModel):
             )
         if n > self.raw_sample_count:
             raise ValueError(f"curve has {n} points but only {self.raw_sample_count} raw samples")
+        if self.method == "none" and n != self.raw_sample_count:
+            raise ValueError("method 'none' means every raw sample is in the curve")
         if any(b < a for a, b in zip(self.t_s, self.t_s[1:], strict=False)):
             raise ValueError("curve time runs backwards")
         return self

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import copy
 import re
+from collections.abc import Mapping, Sequence
 from typing import Any, Literal
 
 from pydantic import BaseModel
@@ -72,11 +73,16 @@ def _operation_id(action: Literal["send", "receive"], channel_id: str) -> str:
     return f"{action}_{channel_id}"
 
 
-def asyncapi_document(prefix: str | None = None) -> dict[str, Any]:
+def asyncapi_document(
+    prefix: str | None = None,
+    examples: Mapping[str, Sequence[tuple[str, Any]]] | None = None,
+) -> dict[str, Any]:
     """An AsyncAPI 3.0 document of the station's MQTT interface.
 
     With ``prefix`` the channel addresses are concrete for one station (validated, TopicError
-    on a bad one); without it the prefix is the address parameter ``{prefix}``.
+    on a bad one); without it the prefix is the address parameter ``{prefix}``. ``examples``
+    maps a payload name to ``(example name, payload)`` pairs shown with its message (the CLI
+    passes the shipped ``examples/*.json``; this module reads no files).
     """
     root = Topics(prefix).prefix if prefix is not None else "{prefix}"
     models: list[tuple[type[BaseModel], JsonSchemaMode]] = [
@@ -117,6 +123,10 @@ def asyncapi_document(prefix: str | None = None) -> dict[str, Any]:
                 "mqtt": {"payloadFormatIndicator": 1, "bindingVersion": _MQTT_BINDING_VERSION}
             },
         }
+        if examples and examples.get(spec.name):
+            message["examples"] = [
+                {"name": ex_name, "payload": payload} for ex_name, payload in examples[spec.name]
+            ]
         if spec.direction == "subscribe" or spec.name == "Reply":
             message["correlationId"] = {
                 "description": "MQTT 5 Correlation Data is echoed as a property; the payload's "

@@ -227,6 +227,7 @@ def _result_with(**changes: Any) -> bytes:
         ({"finished_at": "2026-05-12T07:41:00Z"}, "before started_at"),
         ({"curve__t_s": [0.0, 0.1]}, "differ in length"),
         ({"curve__raw_sample_count": 10}, "raw samples"),
+        ({"curve__method": "none"}, "every raw sample"),
         ({"final_torque_nm": "47.5"}, "valid number"),
         ({"joint_rate_r2": 1.5}, "less than or equal to 1"),
         ({"id": str(uuid.uuid4())}, "should match pattern"),

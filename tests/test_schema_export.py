@@ -14,6 +14,7 @@ External checks:
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 import subprocess
 import sys
@@ -22,10 +23,20 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from jsonschema import Draft7Validator, Draft202012Validator
 
 from clampd.daemon.cli import main
-from clampd.protocol import TOPIC_TABLE
+from clampd.protocol import (
+    TOPIC_TABLE,
+    Curve,
+    Reason,
+    RundownResult,
+    StopTrigger,
+    Strategy,
+    new_uuid7,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 # The installed console script, as an integrator would run it.
@@ -241,7 +252,10 @@ def test_examples_validate_against_the_asyncapi_components(
     schema = {"components": asyncapi["components"], "$ref": f"#/components/schemas/{name}"}
     message = asyncapi["components"]["messages"][name]
     assert message["payload"] == {"$ref": f"#/components/schemas/{name}"}
-    assert list(Draft7Validator(schema).iter_errors(json.loads(path.read_text()))) == []
+    payload = json.loads(path.read_text())
+    assert list(Draft7Validator(schema).iter_errors(payload)) == []
+    # the CLI shows the shipped example with its message
+    assert {"name": path.name.removesuffix(".json"), "payload": payload} in message["examples"]
 
 
 def test_components_use_only_draft_07_keywords(asyncapi: dict[str, Any]) -> None:
@@ -275,3 +289,67 @@ def test_concrete_prefix_gives_concrete_addresses(capsys: pytest.CaptureFixture[
     assert not any("{prefix}" in a for a in addresses)
     assert "parameters" not in doc["channels"]["result"]
     assert doc["channels"]["wrench_status"]["parameters"].keys() == {"wrench_id"}
+
+
+# ---------------------------------------------------------------- any result the models build
+
+
+_finite = st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def _results(draw: st.DrawFn) -> bytes:
+    """Results that the model accepts, varied in every optional part, serialised for the wire."""
+    data = json.loads((EXAMPLES / "RundownResult.json").read_text())
+    reasons = draw(st.lists(st.sampled_from(list(Reason)), unique=True, max_size=4))
+    data["status"] = "NOK" if reasons else "OK"
+    data["reasons"] = [r.value for r in reasons]
+    data["id"] = new_uuid7()
+    start = draw(
+        st.datetimes(
+            min_value=dt.datetime(2000, 1, 1),
+            max_value=dt.datetime(2100, 1, 1),
+            timezones=st.just(dt.UTC),
+        )
+    )
+    data["started_at"] = start.isoformat()
+    data["finished_at"] = (start + dt.timedelta(seconds=draw(st.floats(0, 600)))).isoformat()
+    for key in (
+        "snug_torque_nm",
+        "final_angle_deg",
+        "joint_rate_nm_per_deg",
+        "yield_point",
+        "windows",
+    ):
+        if draw(st.booleans()):
+            data[key] = None
+    data["joint_rate_r2"] = draw(st.none() | st.floats(0.0, 1.0))
+    final = draw(_finite)
+    data["final_torque_nm"] = final
+    data["peak_torque_nm"] = final + draw(st.floats(0.0, 100.0))
+    data["strategy"] = draw(st.sampled_from(list(Strategy))).value
+    data["stop_trigger"] = draw(st.sampled_from(list(StopTrigger))).value
+    n = draw(st.integers(0, 40))
+    t = sorted(draw(st.lists(st.floats(0.0, 1e4), min_size=n, max_size=n)))
+    extra = draw(st.integers(0, 10_000))
+    curve = Curve(
+        method="lttb" if extra else "none",
+        raw_sample_count=n + extra,
+        t_s=t,
+        angle_deg=draw(st.lists(_finite, min_size=n, max_size=n)),
+        torque_nm=draw(st.lists(_finite, min_size=n, max_size=n)),
+    )
+    data["curve"] = json.loads(curve.model_dump_json())
+    return RundownResult.model_validate_json(json.dumps(data)).to_json_bytes()
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(wire=_results())
+def test_any_result_the_station_can_build_validates_against_the_printed_schema(
+    printed_schemas: dict[str, Any], wire: bytes
+) -> None:
+    """The design contract: results published over MQTT validate against `clampd schema`."""
+    errors = list(
+        Draft202012Validator(printed_schemas["RundownResult"]).iter_errors(json.loads(wire))
+    )
+    assert errors == []

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from typing import Any
 
 __all__ = ["add_arguments", "run"]
 
@@ -29,6 +30,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--list", action="store_true", help="print the payload names, one a line")
 
 
+def _shipped_examples() -> dict[str, list[tuple[str, Any]]]:
+    """The example payloads shipped as package data, by payload name (``NAME[.variant].json``)."""
+    from importlib.resources import files
+
+    out: dict[str, list[tuple[str, Any]]] = {}
+    folder = files("clampd.protocol").joinpath("examples")
+    for entry in sorted(folder.iterdir(), key=lambda e: e.name):
+        if entry.name.endswith(".json"):
+            stem = entry.name.removesuffix(".json")
+            out.setdefault(stem.split(".")[0], []).append((stem, json.loads(entry.read_text())))
+    return out
+
+
 def run(args: argparse.Namespace) -> int:
     """Print the requested schema(s); 2 on an unknown name or a bad prefix."""
     from clampd.protocol import TopicError, asyncapi_document, json_schemas
@@ -38,7 +52,7 @@ def run(args: argparse.Namespace) -> int:
             print("clampd schema: give a payload name or --asyncapi, not both", file=sys.stderr)
             return 2
         try:
-            doc = asyncapi_document(args.prefix)
+            doc = asyncapi_document(args.prefix, _shipped_examples())
         except TopicError as exc:
             print(f"clampd schema: {exc}", file=sys.stderr)
             return 2
