@@ -26,6 +26,7 @@ __all__ = [
     "InboundModel",
     "OutboundModel",
     "PartId",
+    "Serial",
     "Text",
     "UtcDatetime",
     "Uuid7",
@@ -45,6 +46,9 @@ Ident = Annotated[str, StringConstraints(pattern=IDENT_PATTERN)]
 PartId = Annotated[str, StringConstraints(pattern=r"^[!-~]{1,128}$")]
 # Human-readable text for a log or a screen; bounded so a payload stays small.
 Text = Annotated[str, StringConstraints(min_length=1, max_length=500)]
+# A wrench's serial as its firmware reports it (the sensor profile's info record gives 16 ASCII
+# bytes; 32 leaves room for other sensors): printable ASCII, inner spaces allowed.
+Serial = Annotated[str, StringConstraints(pattern=r"^[!-~]([ -~]{0,30}[!-~])?$")]
 Uuid7 = Annotated[str, StringConstraints(pattern=UUID7_PATTERN)]
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 

@@ -34,6 +34,7 @@ from clampd.protocol._fields import (
     Ident,
     OutboundModel,
     PartId,
+    Serial,
     Text,
     UtcDatetime,
     Uuid7,
@@ -154,7 +155,7 @@ class WrenchRef(OutboundModel):
     """Which wrench did the rundown, and whether its calibration was current."""
 
     wrench_id: Ident
-    serial: Annotated[str, Field(pattern=r"^[!-~]{1,32}$")]
+    serial: Serial
     calibration: Calibration
 
 
@@ -353,7 +354,7 @@ class WrenchStatus(OutboundModel):
     kind: Literal["wrench_status"] = "wrench_status"
     station: Ident
     wrench_id: Ident
-    serial: Annotated[str, Field(pattern=r"^[!-~]{1,32}$")] | None
+    serial: Serial | None
     connected: bool
     battery_pct: int | None = Field(ge=0, le=100)
     torque_max_nm: FiniteFloat | None = Field(gt=0, description="Rated capacity.")
