@@ -108,7 +108,9 @@ class SelectProgram(_CommandBase):
         default=None, ge=1, description="Exact version required; null takes the current one."
     )
     part_id: PartId
-    joint_positions: list[Ident] = Field(min_length=1, max_length=MAX_JOINT_POSITIONS)
+    joint_positions: list[Ident] = Field(
+        min_length=1, max_length=MAX_JOINT_POSITIONS, json_schema_extra={"uniqueItems": True}
+    )
     wrench_id: Ident | None = Field(
         default=None, description="Wrench to use; null lets the station choose."
     )

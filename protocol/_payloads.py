@@ -25,7 +25,7 @@ from typing import Annotated, Literal, Self
 
 import numpy as np
 import numpy.typing as npt
-from pydantic import Field, model_validator
+from pydantic import ConfigDict, Field, model_validator
 
 from clampd.protocol._commands import MAX_JOINT_POSITIONS, CommandName, ErrorCode
 from clampd.protocol._downsample import DownsampleError, lttb_indices, take
@@ -262,6 +262,16 @@ class RundownResult(OutboundModel):
     both deliver at least once.
     """
 
+    # The cross-field rule "OK exactly when no reasons" in the exported schema too (draft-07
+    # if/then/else), so an MES validator enforces what the model enforces.
+    model_config = ConfigDict(
+        json_schema_extra={
+            "if": {"properties": {"status": {"const": "OK"}}},
+            "then": {"properties": {"reasons": {"maxItems": 0}}},
+            "else": {"properties": {"reasons": {"minItems": 1}}},
+        }
+    )
+
     schema_version: Literal["1"] = "1"
     kind: Literal["result"] = "result"
     id: Uuid7
@@ -274,7 +284,7 @@ class RundownResult(OutboundModel):
     finished_at: UtcDatetime
     strategy: Strategy
     status: Judgement
-    reasons: list[Reason] = Field(max_length=len(Reason))
+    reasons: list[Reason] = Field(max_length=len(Reason), json_schema_extra={"uniqueItems": True})
     windows: JudgementWindows | None
     snug_torque_nm: FiniteFloat | None = Field(description="null when snug was not found.")
     final_torque_nm: FiniteFloat
@@ -422,6 +432,14 @@ class ReplyStatus(enum.StrEnum):
 
 class Reply(OutboundModel):
     """The station's answer to one command (sent to the requested reply topic)."""
+
+    model_config = ConfigDict(
+        json_schema_extra={
+            "if": {"properties": {"status": {"const": "error"}}},
+            "then": {"properties": {"code": {"type": "string"}}},
+            "else": {"properties": {"code": {"type": "null"}}},
+        }
+    )
 
     schema_version: Literal["1"] = "1"
     kind: Literal["reply"] = "reply"
