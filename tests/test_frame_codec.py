@@ -376,3 +376,20 @@ def test_ten_thousand_mutations_of_valid_frames() -> None:
     assert outcomes["ok"] > 2000
     assert outcomes["error"] > 5000
     assert {FrameTooShortError, FrameVersionError, FrameLengthError, FrameValueError} <= kinds
+
+
+def test_sentinel_byte_pair_straddling_two_values_is_not_a_sentinel() -> None:
+    # 5 is "05 00" and 640 is "80 02": the pair "00 80" appears across the value boundary,
+    # but no channel holds -32768, so the frame is valid (PROFILE.md: only the value counts).
+    data = encode_v1(samples=[(5, 640, 5, 640), (-32767, 32767, 0, 128)])
+    assert b"\x00\x80" in data[20:]
+    frame = decode_frame(data)
+    np.testing.assert_allclose(frame.rate_dps[0], [640 * f32(0.1), 5 * f32(0.1), 640 * f32(0.1)])
+    np.testing.assert_allclose(frame.torque_nm, [5 * f32(0.01), -32767 * f32(0.01)])
+
+
+def test_sentinel_found_in_a_memoryview_input() -> None:
+    data = encode_v1(samples=[(1, 2, 3, -32768)])
+    with pytest.raises(FrameValueError) as info:
+        decode_frame(memoryview(bytearray(data)))
+    assert info.value.field == "rate_z"
