@@ -339,3 +339,22 @@ def test_header_rejects_impossible_values() -> None:
         FrameHeader(sequence=0, timestamp_us=0, period_us=0, count=1)
     with pytest.raises(ValueError, match="sequence"):
         FrameHeader(sequence=-1, timestamp_us=0, period_us=1, count=1)
+
+
+@pytest.mark.parametrize(
+    ("received", "accepted", "event"),
+    [
+        # expected is 1; a forward difference of 32767 is the largest loss (half range − 1) ...
+        (32768, True, LostFrames(expected=1, received=32768, missing=32767)),
+        # ... and exactly half the range is read as the past. RFC 1982 §3.2 leaves that one
+        # case undefined; PROFILE.md ("Receiving a stream") fixes it as "from the past".
+        (32769, False, LateFrame(sequence=32769, expected=1)),
+        (65535, False, LateFrame(sequence=65535, expected=1)),
+    ],
+)
+def test_half_range_boundary(received: int, accepted: bool, event: object) -> None:
+    checker = SequenceChecker()
+    checker.feed(FrameHeader(sequence=0, timestamp_us=0, period_us=1000, count=1))
+    check = checker.feed(FrameHeader(sequence=received, timestamp_us=1000, period_us=1000, count=1))
+    assert check.accepted is accepted
+    assert check.events[0] == event
