@@ -164,6 +164,8 @@ class WrenchPeripheral:
         self._subscribed = False
         self._in_range = True
         self._wake = asyncio.Event()
+        self._readvertise = asyncio.Event()
+        self._closing = False
         self._tasks: list[asyncio.Task[None]] = []
         self._last_battery = -1
 
@@ -207,11 +209,17 @@ class WrenchPeripheral:
         self._tasks = [
             loop.create_task(self._stream(), name=f"clampd[{self.name}].notify"),
             loop.create_task(self._watch_battery(), name=f"clampd[{self.name}].battery"),
+            loop.create_task(self._keep_advertising(), name=f"clampd[{self.name}].advertise"),
         ]
         logger.info("%s %s: advertising", self.name, self.address)
         return self
 
     async def __aexit__(self, *exc: object) -> None:
+        # bumble's HCI command path can swallow a cancellation that lands mid-command, so
+        # the loops also stop on a flag and are woken to see it.
+        self._closing = True
+        self._wake.set()
+        self._readvertise.set()
         for task in self._tasks:
             task.cancel()
         for task in self._tasks:
@@ -315,10 +323,7 @@ class WrenchPeripheral:
         self._subscribed = False
         self._wake.set()
         logger.info("%s %s: disconnected (reason 0x%02X)", self.name, self.address, reason)
-        if self._in_range:
-            asyncio.get_running_loop().create_task(
-                self._advertise(), name=f"clampd[{self.name}].readvertise"
-            )
+        self._readvertise.set()
 
     def _on_mtu(self) -> None:
         conn = self._connection
@@ -359,12 +364,15 @@ class WrenchPeripheral:
     async def _stream(self) -> None:
         loop = asyncio.get_running_loop()
         due: float | None = None
-        while True:
+        while not self._closing:
             if not self._may_stream():
                 due = None
                 self._wake.clear()
+                # asyncio.timeout, not wait_for: on 3.11 wait_for can swallow a
+                # cancellation that coincides with its timeout, and shutdown then hangs.
                 with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(self._wake.wait(), _IDLE_POLL_S)
+                    async with asyncio.timeout(_IDLE_POLL_S):
+                        await self._wake.wait()
                 continue
             conn = self._connection
             assert conn is not None
@@ -391,8 +399,17 @@ class WrenchPeripheral:
                     due = now
                 await asyncio.sleep(0)
 
+    async def _keep_advertising(self) -> None:
+        # Advertising restarts from a task of ours, not from the disconnection callback,
+        # so shutting down cancels it instead of racing a power-off.
+        while not self._closing:
+            await self._readvertise.wait()
+            self._readvertise.clear()
+            if self._in_range and self._connection is None and not self._closing:
+                await self._advertise()
+
     async def _watch_battery(self) -> None:
-        while True:
+        while not self._closing:
             level = self._battery_level()
             conn = self._connection
             if level != self._last_battery and conn is not None:

@@ -53,6 +53,7 @@ __all__ = [
     "HciHub",
     "HciSpecError",
     "VirtualAir",
+    "VirtualController",
     "open_central",
     "parse_tcp_server_spec",
 ]
@@ -83,10 +84,42 @@ def parse_tcp_server_spec(spec: str) -> tuple[str, int]:
     return host, port
 
 
+class VirtualController(Controller):
+    """bumble's virtual controller with LE ACL packets of 251 bytes and a real
+    connection-cancel: Core spec Vol 4 Part E 7.8.13 says a cancelled LE Create Connection
+    ends with an LE Connection Complete event of status Unknown Connection Identifier.
+    bumble 0.0.236 answers the cancel but never ends the attempt, so a connect to a wrench
+    that is out of range hung forever and blocked every later connect on that central.
+    """
+
+    le_acl_data_packet_length = LE_ACL_LENGTH
+
+    def on_hci_le_create_connection_cancel_command(
+        self, command: hci.HCI_LE_Create_Connection_Cancel_Command
+    ) -> hci.HCI_StatusReturnParameters:
+        pending = self.pending_le_connection
+        if pending is None:
+            return hci.HCI_StatusReturnParameters(hci.HCI_ErrorCode.COMMAND_DISALLOWED_ERROR)
+        self.pending_le_connection = None
+        peer = pending.peer_address
+        event = hci.HCI_LE_Connection_Complete_Event(
+            status=hci.HCI_ErrorCode.UNKNOWN_CONNECTION_IDENTIFIER_ERROR,
+            connection_handle=0,
+            role=hci.Role.CENTRAL,
+            peer_address_type=peer.address_type,
+            peer_address=peer,
+            connection_interval=0,
+            peripheral_latency=0,
+            supervision_timeout=0,
+            central_clock_accuracy=0,
+        )
+        # Next loop turn: after the Command Complete built from the return value below.
+        asyncio.get_running_loop().call_soon(self.send_hci_packet, event)
+        return hci.HCI_StatusReturnParameters(hci.HCI_ErrorCode.SUCCESS)
+
+
 def _new_controller(link: LocalLink, name: str) -> Controller:
-    ctrl = Controller(name, link=link)
-    ctrl.le_acl_data_packet_length = LE_ACL_LENGTH
-    return ctrl
+    return VirtualController(name, link=link)
 
 
 def _static_address(n: int) -> hci.Address:
@@ -279,10 +312,9 @@ class HciHub:
         sock = transport.get_extra_info("socket")
         if sock is not None:
             sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-        ctrl = Controller(
+        ctrl = VirtualController(
             f"hub-{next(self._numbers)}", host_source=source, host_sink=sink, link=self.link
         )
-        ctrl.le_acl_data_packet_length = LE_ACL_LENGTH
         self.controllers.append(ctrl)
         logger.info("HCI hub: host attached as %s", ctrl.name)
         return ctrl
