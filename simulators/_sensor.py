@@ -251,8 +251,8 @@ class VirtualWrenchSensor:
         return max(0, min(100, math.ceil(self._battery)))
 
     def streaming(self) -> bool:
-        """True between START_STREAM and STOP_STREAM."""
-        return self._streaming
+        """True between START_STREAM and STOP_STREAM while a frame fits the notification size."""
+        return self._streaming and self._per_frame > 0
 
     def on_control(self, data: bytes) -> None:
         """Apply a control write; raise :class:`ControlRejected` with the ATT code to answer."""
@@ -300,8 +300,8 @@ class VirtualWrenchSensor:
         added to the next returned frame's so a peripheral pacing on spans keeps real time.
         Raises :class:`SensorError` when not streaming (the caller's sequencing mistake).
         """
-        if not self._streaming:
-            raise SensorError("next_notification() while not streaming")
+        if not self.streaming():
+            raise SensorError("next_notification() while not streaming (stopped, or MTU too small)")
         span = 0.0
         while True:
             frame, frame_span = self._build_frame()
@@ -331,12 +331,13 @@ class VirtualWrenchSensor:
     def set_max_notification(self, n_bytes: int) -> None:
         """Fit later frames into ``n_bytes`` of notification payload (ATT MTU − 3).
 
-        PROFILE.md: at MTU 247 up to 28 samples; at the default MTU 23 at most 2 samples.
+        PROFILE.md: at MTU 247 up to 28 samples; below MTU 31 not one sample fits, so the sensor
+        holds its stream (``streaming()`` is False) until an MTU exchange raises the size.
         """
         if n_bytes < 0:
             raise SensorError(f"payload size must be ≥ 0, got {n_bytes}")
-        fit = (n_bytes - FRAME_HEADER_SIZE) // 8 if n_bytes >= FRAME_HEADER_SIZE + 8 else 2
-        self._per_frame = max(1, min(self.params.samples_per_frame, fit))
+        fit = max(0, (n_bytes - FRAME_HEADER_SIZE) // 8)
+        self._per_frame = min(self.params.samples_per_frame, fit)
 
     @property
     def samples_per_frame(self) -> int:

@@ -306,8 +306,11 @@ def test_frames_shrink_to_the_negotiated_payload() -> None:
     sensor.set_max_notification(100)
     data, _ = stream(sensor, 1)[0]
     assert len(data) == FRAME_HEADER_SIZE + 8 * 10 <= 100
-    sensor.set_max_notification(20)  # default MTU 23: PROFILE.md allows at most 2 samples
-    assert decode_frame(sensor.next_notification()[0]).count == 2
+    sensor.set_max_notification(20)  # default MTU 23: PROFILE.md, not one sample fits
+    assert sensor.samples_per_frame == 0
+    assert not sensor.streaming()
+    sensor.set_max_notification(28)  # MTU 31: exactly one sample
+    assert decode_frame(sensor.next_notification()[0]).count == 1
 
 
 @settings(max_examples=150, deadline=None)
