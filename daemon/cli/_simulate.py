@@ -3,6 +3,10 @@
 Each simulator is a sub-subcommand with its own ``_add_NAME(parser)`` and ``_run_NAME(args)``;
 ``add_arguments`` registers them and ``run`` dispatches on the one chosen.
 
+- ``wrench [--hci SPEC] [--name NAME] [--rate HZ] [--seed S] [--idle] [--duration S]``: one
+  virtual wrench as a real GATT peripheral on bumble, reachable from another process over
+  an HCI transport (default ``tcp-server:127.0.0.1:0``; prints ``ready ... hci=SPEC`` with
+  the spec a central joins with). Runs until SIGINT/SIGTERM or ``--duration``.
 - ``study KIND --joints N --seed S [--json] [--plot FILE.png] [--workers W]``: a seeded
   population study scoring the engine against the simulator (``preload``: preload scatter
   and αA per strategy; ``cues``: final-angle error with and without predictive cueing;
@@ -32,6 +36,13 @@ _DEFAULT_JOINTS = 200
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Register every simulator under ``clampd simulate``."""
     sub = parser.add_subparsers(dest="simulate_command", metavar="WHAT", required=True)
+    _add_wrench(
+        sub.add_parser(
+            "wrench",
+            help="one virtual wrench as a GATT peripheral reachable over an HCI transport",
+            description=_run_wrench.__doc__,
+        )
+    )
     _add_study(
         sub.add_parser(
             "study",
@@ -93,4 +104,72 @@ def _run_study(args: argparse.Namespace) -> int:
     sys.stdout.write(report.json_text() if args.json else report.table())
     if plot is not None:
         print(f"wrote {plot}", file=sys.stderr)
+    return 0
+
+
+# ---------------------------------------------------------------------------- wrench
+def _add_wrench(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--hci",
+        default="tcp-server:127.0.0.1:0",
+        metavar="SPEC",
+        help="tcp-server:HOST:PORT to host the link here (port 0: any free port), or a "
+        "bumble transport such as tcp-client:HOST:PORT to join another hub "
+        "(default tcp-server:127.0.0.1:0)",
+    )
+    parser.add_argument("--name", default="W-1", help="advertised local name (default W-1)")
+    parser.add_argument(
+        "--rate", type=int, default=1000, help="sample rate, Hz, 250..4000 (default 1000)"
+    )
+    parser.add_argument("--seed", type=int, default=1, help="random seed (default 1)")
+    parser.add_argument("--serial", default=None, help="serial number (default SIM-NAME)")
+    parser.add_argument(
+        "--idle",
+        action="store_true",
+        help="the wrench lies still (default: a simulated technician tightens M10 joints)",
+    )
+    parser.add_argument(
+        "--duration", type=float, default=None, metavar="S", help="stop after S seconds"
+    )
+    parser.set_defaults(simulate_run=_run_wrench)
+
+
+def _run_wrench(args: argparse.Namespace) -> int:
+    """Serve one virtual wrench (GATT on bumble) until SIGINT/SIGTERM or --duration."""
+    import asyncio
+
+    from clampd.simulators.ble._standalone import (
+        StandaloneError,
+        StandaloneWrench,
+        install_stop_signals,
+        serve_wrench,
+    )
+
+    try:
+        cfg = StandaloneWrench(
+            hci=args.hci,
+            name=args.name,
+            rate_hz=args.rate,
+            seed=args.seed,
+            serial=args.serial,
+            idle=args.idle,
+            duration_s=args.duration,
+        )
+    except StandaloneError as exc:
+        return _error(str(exc))
+
+    async def main() -> None:
+        stop = asyncio.Event()
+        remove = install_stop_signals(stop)
+        try:
+            await serve_wrench(cfg, stop=stop)
+        finally:
+            remove()
+
+    try:
+        asyncio.run(main())
+    except StandaloneError as exc:
+        return _error(str(exc))
+    except OSError as exc:
+        return _error(f"--hci {cfg.hci}: {exc.strerror or exc}")
     return 0

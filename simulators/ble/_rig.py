@@ -36,7 +36,7 @@ from bumble.device import Device
 from bumble.host import Host
 from bumble.link import LocalLink
 from bumble.transport import open_transport
-from bumble.transport.common import AsyncPipeSink, StreamPacketSource
+from bumble.transport.common import AsyncPipeSink, StreamPacketSource, TransportInitError
 
 from clampd.simulators.ble._peripheral import (
     ADVERTISING_INTERVAL_MS,
@@ -343,7 +343,7 @@ async def open_central(
     """
     try:
         transport: Transport = await open_transport(spec)
-    except (ValueError, KeyError) as exc:
+    except (ValueError, KeyError, TransportInitError) as exc:
         raise HciSpecError(f"cannot open HCI transport {spec!r}: {exc}") from exc
     try:
         dev = Device.with_hci(
