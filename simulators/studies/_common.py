@@ -33,6 +33,7 @@ import dataclasses
 import enum
 import json
 import math
+import multiprocessing
 import os
 from collections import deque
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -323,7 +324,10 @@ def parallel_map(fn: Callable[[_T], _R], items: Sequence[_T], workers: int) -> l
     if workers <= 1 or len(items) < 2:
         return [fn(x) for x in items]
     chunk = max(1, len(items) // (4 * workers))
-    with concurrent.futures.ProcessPoolExecutor(max_workers=workers) as pool:
+    # "spawn": a fresh interpreter per worker; forking a process that may hold threads (an
+    # event loop, a BLE stack) can deadlock, and the import cost (~1 s) is paid once per worker.
+    ctx = multiprocessing.get_context("spawn")
+    with concurrent.futures.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
         return list(pool.map(fn, items, chunksize=chunk))
 
 
