@@ -1,0 +1,825 @@
+"""The per-wrench worker: one task owns one wrench's engine and turns its link into outputs.
+
+Theory of operation
+-------------------
+``WrenchWorker.run()`` lives for the daemon's lifetime. It keeps the wrench's link up
+(``link.connect_forever``) and, per connection, reads ``link.notifications()`` in one task:
+
+1. decode the frame (profile v1 or the configured declarative profile). A ``FrameError`` is
+   the sensor's fault: counted, logged, the frame dropped, the worker goes on;
+2. check continuity (``SequenceChecker``, a new one per connection): lost notifications are
+   counted; the engine sees the hole through the sample times (its ``max_gap_s`` judges it);
+3. place the samples on one continuous engine time line. Each connection's sensor time is
+   shifted so that it continues from the previous connection by the host time that passed,
+   so the engine's time never runs backwards, even when a wrench rebooted meanwhile;
+4. take the configured axis and sign, multiply torque by the calibration factor, feed;
+5. act on the events. A stop or approach cue is played on the station's ``CuePlayer`` at once
+   (``play`` never blocks) and queued for the tool's control characteristic, which a second
+   task of the connection writes, so a slow radio write never delays the next sample. Live
+   events (snug, cue, stop, progress at a bounded rate) go to the ``LiveSink`` without
+   waiting. A finished rundown becomes the result payload (``_results.build_result``), is
+   put into the durable ``ResultSink`` first, and only then is the joint position marked done
+   in the station state. A result the sink refuses (outbox full, disk full) stays in memory
+   and is retried on every idle tick: nothing judged is dropped.
+
+Link loss ends the rundown in progress NOK ``link_lost`` with its partial curve (the engine
+keeps it); the result is stored like any other and the link reconnects on its own.
+
+Station policy (documented choices)
+-----------------------------------
+- Locked tool: the rundown is still measured (the joint *is* being loaded, and a record of it
+  is worth more than silence), the tool and the speaker play the ``locked`` cue when it starts,
+  and its result is NOK. The published contract (schema 1) has no ``tool_locked`` reason, so
+  the reason is ``aborted``: the station refused the rundown. Stop cues still play, because
+  stopping a person at target is safer than letting them pull on.
+- Calibration overdue: every result carries the calibration state and due date; when the
+  wrench's config says ``block_when_calibration_overdue``, a rundown is refused like a locked
+  one, with reason ``calibration_overdue``.
+- No program selected: there is nothing to judge against, so samples are checked and dropped;
+  torque past the start level plays the ``locked`` cue once per excursion.
+- Program changes (a new selection) apply between rundowns only; the part id and joint position
+  of a rundown are those in force when it started.
+- Aborts (``request_abort``) end the rundown in progress NOK ``aborted`` at the next frame or
+  idle tick (within ``IDLE_S``).
+
+These results support, never replace, the joint designer's specification, local codes and
+licensed practice.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import contextlib
+import dataclasses
+import datetime as dt
+import logging
+import math
+import random
+import time
+from collections.abc import AsyncIterator, Awaitable, Callable
+from typing import Final, Literal, Protocol
+
+import numpy as np
+import numpy.typing as npt
+
+from clampd.daemon import engine
+from clampd.daemon.runtime._ble import (
+    BatteryLevel,
+    Idle,
+    LinkError,
+    LinkItem,
+    LinkLost,
+    Notification,
+)
+from clampd.daemon.runtime._config import CalibrationState as ConfigCalibration
+from clampd.daemon.runtime._config import WrenchConfig, calibration_state
+from clampd.daemon.runtime._cues import CuePlayer, CueSound, LatencyLog
+from clampd.daemon.runtime._outbox import OutboxError
+from clampd.daemon.runtime._results import (
+    STOP_TRIGGERS,
+    ClockAnchor,
+    ResultContext,
+    ResultSink,
+    build_result,
+    safe_serial,
+)
+from clampd.protocol import (
+    Calibration,
+    CalibrationState,
+    CueKind,
+    CuePattern,
+    FrameError,
+    Judgement,
+    LiveCue,
+    LiveProgress,
+    LiveSnug,
+    LiveStop,
+    LostFrames,
+    Reason,
+    RundownResult,
+    SampleFrame,
+    SequenceChecker,
+    WrenchInfo,
+    WrenchStatus,
+    axis_rate,
+    decode_frame,
+    encode_cue,
+    load_builtin_profile,
+    load_profile,
+    new_uuid7,
+)
+
+__all__ = [
+    "CUE_DURATION_MS",
+    "IDLE_S",
+    "PROGRESS_INTERVAL_S",
+    "LiveSink",
+    "StationPort",
+    "StatusSink",
+    "WorkOrder",
+    "WorkerStats",
+    "WrenchLinkPort",
+    "WrenchWorker",
+    "engine_settings",
+]
+
+_log = logging.getLogger(__name__)
+
+# With no notification for this long the worker ticks its engine (rundown timeout) and looks at
+# aborts, lock changes and unstored results. 0.1 s keeps an abort prompt and costs ten wake-ups
+# a second on an idle link (our choice; the engine's default timeout is 5 s).
+IDLE_S: Final = 0.1
+# Live progress at most this often per wrench: a dashboard redraws at about 10 Hz, and live
+# events are QoS 0 (common practice, no source; the MQTT side rate-limits again).
+PROGRESS_INTERVAL_S: Final = 0.1
+# How long the tool's buzzer/LED plays each pattern, ms (our own choice: long enough to
+# notice, short enough to end before the next stroke). Stop is longest: it must be noticed.
+CUE_DURATION_MS: Final[dict[CuePattern, int]] = {
+    CuePattern.APPROACH: 150,
+    CuePattern.STOP: 400,
+    CuePattern.OK: 300,
+    CuePattern.NOK: 600,
+    CuePattern.LOCKED: 600,
+}
+# Cue writes waiting for the radio: a cue older than a few is stale (our choice).
+_CUE_QUEUE_BOUND: Final = 8
+# Log at most one line per this many corrupt frames after the first few (our choice).
+_CORRUPT_LOG_EVERY: Final = 100
+
+_CUE_SOUND: Final = {
+    engine.CueKind.APPROACH: (CueSound.APPROACH, CuePattern.APPROACH, CueKind.APPROACH),
+    engine.CueKind.STOP: (CueSound.STOP, CuePattern.STOP, CueKind.STOP),
+}
+_CALIBRATION: Final = {
+    ConfigCalibration.OK: CalibrationState.OK,
+    ConfigCalibration.DUE_SOON: CalibrationState.DUE_SOON,
+    ConfigCalibration.OVERDUE: CalibrationState.OVERDUE,
+}
+
+LiveEventPayload = LiveProgress | LiveCue | LiveSnug | LiveStop
+
+
+# -- ports -------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class WorkOrder:
+    """What the station wants from this wrench next: the program, the part and the position."""
+
+    program: engine.Program
+    part_id: str
+    joint_position: str
+
+
+class StationPort(Protocol):
+    """The part of the station state a wrench worker reads and advances."""
+
+    def work_order(self, wrench_id: str) -> WorkOrder | None:
+        """The selection in force for this wrench, or None when nothing is selected."""
+        ...
+
+    def is_locked(self, wrench_id: str) -> bool:
+        """True while rundowns on this wrench must be refused."""
+        ...
+
+    def position_done(self, wrench_id: str, joint_position: str, status: Judgement) -> None:
+        """A result for ``joint_position`` is stored; the station may advance to the next."""
+        ...
+
+
+class LiveSink(Protocol):
+    """Live events (QoS 0): ``offer`` never blocks and may drop."""
+
+    def offer(self, wrench_id: str, event: LiveEventPayload) -> None:
+        """Hand over one live event."""
+        ...
+
+
+class StatusSink(Protocol):
+    """Retained wrench status: ``offer_status`` never blocks; the latest one wins."""
+
+    def offer_status(self, status: WrenchStatus) -> None:
+        """Hand over the wrench's current status."""
+        ...
+
+
+class WrenchLinkPort(Protocol):
+    """What the worker needs of a link (``BleakWrenchLink`` provides it)."""
+
+    address: str
+    info: WrenchInfo | None
+    battery_pct: int | None
+
+    @property
+    def connected(self) -> bool:
+        """True while the link is up."""
+        ...
+
+    def notifications(self, *, idle_s: float | None = None) -> AsyncIterator[LinkItem]:
+        """Items in arrival order until ``LinkLost``."""
+        ...
+
+    async def write_control(self, data: bytes) -> None:
+        """One control write with response."""
+        ...
+
+    async def connect_forever(
+        self, serve: Callable[[WrenchLinkPort], Awaitable[None]], *, rng: random.Random | None
+    ) -> None:
+        """Connect, serve, reconnect after loss; forever."""
+        ...
+
+
+@dataclasses.dataclass(slots=True)
+class WorkerStats:
+    """Counters of one worker, for status, logs, tests and benchmarks."""
+
+    frames: int = 0
+    frames_corrupt: int = 0
+    frames_lost: int = 0
+    frames_refused: int = 0
+    samples_rejected: int = 0
+    samples_unassigned: int = 0
+    rundowns: int = 0
+    results_stored: int = 0
+    results_unstored: int = 0
+    cue_writes: int = 0
+    cue_writes_failed: int = 0
+    cue_writes_dropped: int = 0
+    links_lost: int = 0
+    live_offered: int = 0
+
+
+@dataclasses.dataclass(slots=True)
+class _Rundown:
+    result_id: str
+    order: WorkOrder
+    t0: float
+    extra: tuple[Reason, ...]
+    last_progress_host_s: float = -math.inf
+
+
+def engine_settings(
+    config: WrenchConfig, *, reaction_time_s: float = 0.2, cue_latency_s: float = 0.05
+) -> engine.EngineSettings:
+    """Engine settings for this wrench: its deflection, the station's cue timing."""
+    return engine.EngineSettings(
+        deflection_deg_per_nm=config.deflection_deg_per_nm,
+        reaction_time_s=reaction_time_s,
+        cue_latency_s=cue_latency_s,
+    )
+
+
+def _utc_today() -> dt.date:
+    return dt.datetime.now(dt.UTC).date()
+
+
+class WrenchWorker:
+    """One wrench: its link, its engine and everything that follows from the samples.
+
+    All engine calls happen in the task running ``run()``; the other public methods only
+    set flags, so they are safe to call from any task of the loop.
+    """
+
+    def __init__(
+        self,
+        config: WrenchConfig,
+        *,
+        station_id: str,
+        link: WrenchLinkPort,
+        station: StationPort,
+        results: ResultSink,
+        live: LiveSink,
+        status: StatusSink,
+        cues: CuePlayer,
+        settings: engine.EngineSettings | None = None,
+        today: Callable[[], dt.date] = _utc_today,
+        rng: random.Random | None = None,
+        idle_s: float = IDLE_S,
+        progress_interval_s: float = PROGRESS_INTERVAL_S,
+    ) -> None:
+        self.config = config
+        self.wrench_id = config.id
+        self.station_id = station_id
+        self.link = link
+        self._station = station
+        self._results = results
+        self._live = live
+        self._status = status
+        self._player = cues
+        self._settings = settings if settings is not None else engine_settings(config)
+        self._today = today
+        self._rng = rng
+        self._idle_s = idle_s
+        self._progress_s = progress_interval_s
+        axis = config.axis
+        self._axis: Literal["x", "y", "z"] = (
+            "x" if axis[1] == "x" else "y" if axis[1] == "y" else "z"
+        )
+        self._sign: Literal[1, -1] = 1 if axis[0] == "+" else -1
+        self._decode: Callable[[bytes], SampleFrame]
+        self._new_checker: Callable[[], SequenceChecker]
+        if config.profile == "v1":
+            self._decode = decode_frame
+            self._new_checker = SequenceChecker
+        else:
+            profile = (
+                load_profile(config.profile)
+                if config.profile.endswith(".toml")
+                else load_builtin_profile(config.profile)
+            )
+            self._decode = profile.decode
+            self._new_checker = profile.checker
+        self.engine: engine.Engine | None = None
+        self.stats = WorkerStats()
+        self.cue_latency = LatencyLog()
+        """Sample arrival (host stamp of the notification) to the cue player call, seconds."""
+        self._checker = self._new_checker()
+        self._offset: float | None = None
+        self._last_t: float | None = None
+        self._last_host: float | None = None
+        self._last_period_s = 0.001
+        self._last_torque = 0.0
+        self._anchor: ClockAnchor | None = None
+        self._current: _Rundown | None = None
+        self._abort = False
+        self._unassigned_warned = False
+        self._unstored: collections.deque[RundownResult] = collections.deque()
+        self._cue_queue: asyncio.Queue[bytes] | None = None
+        self._last_status: tuple[object, ...] | None = None
+        self._battery: int | None = None
+
+    def __repr__(self) -> str:
+        return f"WrenchWorker({self.wrench_id!r}, {self.link.address!r})"
+
+    # -- public surface ----------------------------------------------------------------
+
+    def request_abort(self) -> bool:
+        """Ask to end the rundown in progress NOK (aborted); False when none is in progress."""
+        if self._current is None:
+            return False
+        self._abort = True
+        return True
+
+    @property
+    def in_rundown(self) -> bool:
+        """True while a rundown is in progress."""
+        return self._current is not None
+
+    @property
+    def unstored_results(self) -> int:
+        """Judged results the sink refused so far and the worker still holds."""
+        return len(self._unstored)
+
+    async def run(self) -> None:
+        """Serve the wrench forever (until cancelled): connect, stream, reconnect."""
+        self._publish_status(force=True)
+        await self.link.connect_forever(self._serve, rng=self._rng)
+
+    # -- one connection ----------------------------------------------------------------
+
+    async def _serve(self, link: WrenchLinkPort) -> None:
+        self._checker = self._new_checker()
+        self._offset = None
+        queue: asyncio.Queue[bytes] = asyncio.Queue(_CUE_QUEUE_BOUND)
+        self._cue_queue = queue
+        self._battery = link.battery_pct
+        self._publish_status()
+        try:
+            async with asyncio.TaskGroup() as tg:
+                writer = tg.create_task(
+                    self._write_cues(link, queue), name=f"clampd[{self.wrench_id}].cues"
+                )
+                try:
+                    async for item in link.notifications(idle_s=self._idle_s):
+                        await self._handle(item)
+                finally:
+                    writer.cancel()
+        finally:
+            self._cue_queue = None
+            self._publish_status()
+
+    async def _handle(self, item: LinkItem) -> None:
+        if isinstance(item, Notification):
+            await self._on_notification(item)
+        elif isinstance(item, Idle):
+            await self._on_idle(item.host_t_s)
+        elif isinstance(item, BatteryLevel):
+            self._battery = item.percent
+            self._publish_status()
+        else:
+            await self._on_lost(item)
+
+    async def _write_cues(self, link: WrenchLinkPort, queue: asyncio.Queue[bytes]) -> None:
+        while True:
+            data = await queue.get()
+            try:
+                await link.write_control(data)
+                self.stats.cue_writes += 1
+            except LinkError as exc:
+                # The loss itself arrives as LinkLost in the stream; a refused write is logged.
+                self.stats.cue_writes_failed += 1
+                _log.warning("%s %s: cue write failed: %s", self.wrench_id, self.link.address, exc)
+
+    # -- samples ---------------------------------------------------------------------------
+
+    async def _on_notification(self, n: Notification) -> None:
+        self.stats.frames += 1
+        try:
+            frame = self._decode(n.data)
+        except FrameError as exc:
+            self.stats.frames_corrupt += 1
+            if (
+                self.stats.frames_corrupt <= 3
+                or self.stats.frames_corrupt % _CORRUPT_LOG_EVERY == 0
+            ):
+                _log.warning(
+                    "%s %s: frame dropped (%d so far): %s",
+                    self.wrench_id,
+                    self.link.address,
+                    self.stats.frames_corrupt,
+                    exc,
+                )
+            return
+        check = self._checker.feed(frame)
+        for event in check.events:
+            if isinstance(event, LostFrames):
+                self.stats.frames_lost += event.missing
+        if not check.accepted:
+            self.stats.frames_refused += 1
+            return
+        times = check.times_s()
+        period_s = frame.period_us / 1e6
+        if self._offset is None:
+            self._offset = self._continue_from(float(times[0]), n.host_t_s, period_s)
+        t = times + self._offset
+        torque = frame.torque_nm * self.config.calibration_factor
+        rate = axis_rate(frame, self._axis, self._sign)
+        last_t = float(t[-1])
+        self._anchor = ClockAnchor(
+            sensor_t_s=last_t,
+            host_t_s=n.host_t_s,
+            wall_minus_monotonic_s=time.time() - time.monotonic(),
+        )
+        self._last_t, self._last_host, self._last_period_s = last_t, n.host_t_s, period_s
+        self._last_torque = float(torque[-1])
+        eng = self._engine_for_next_rundown()
+        if eng is None:
+            self._unassigned(torque)
+            return
+        if self._abort:
+            await self._act(eng.abort(float(t[0]) - period_s / 2), n.host_t_s, _EMPTY, eng)
+        base = eng.samples_seen
+        try:
+            events = eng.feed(t, torque, rate)
+        except engine.SensorDataError as exc:
+            self.stats.samples_rejected += frame.count
+            _log.warning("%s %s: samples rejected: %s", self.wrench_id, self.link.address, exc)
+            return
+        await self._act(events, n.host_t_s, torque, eng, base=base)
+        self._progress(n.host_t_s, last_t)
+
+    def _continue_from(self, first_t: float, host_t: float, period_s: float) -> float:
+        """Offset that places this connection's first sample after everything fed so far."""
+        if self._last_t is None or self._last_host is None:
+            return -first_t
+        gap = max(host_t - self._last_host, period_s)
+        return self._last_t + gap - first_t
+
+    def _engine_for_next_rundown(self) -> engine.Engine | None:
+        order = self._station.work_order(self.wrench_id)
+        eng = self.engine
+        if order is None:
+            return eng if eng is not None and eng.state is not engine.State.IDLE else None
+        if eng is None:
+            self.engine = eng = engine.Engine(order.program, self._settings)
+        elif eng.state is engine.State.IDLE and eng.program is not order.program:
+            if (eng.program.id, eng.program.version) != (order.program.id, order.program.version):
+                _log.info(
+                    "%s %s: program %s v%d from the next rundown on",
+                    self.wrench_id,
+                    self.link.address,
+                    order.program.id,
+                    order.program.version,
+                )
+            eng.select_program(order.program)
+        return eng
+
+    def _unassigned(self, torque: npt.NDArray[np.float64]) -> None:
+        self.stats.samples_unassigned += int(torque.shape[0])
+        loaded = bool((torque >= self._settings.start_torque_nm).any())
+        if loaded and not self._unassigned_warned:
+            self._unassigned_warned = True
+            _log.warning(
+                "%s %s: torque applied with no program selected", self.wrench_id, self.link.address
+            )
+            self._cue(CuePattern.LOCKED, sound=CueSound.LOCKED)
+        elif not loaded:
+            self._unassigned_warned = False
+
+    # -- events ----------------------------------------------------------------------------
+
+    async def _act(
+        self,
+        events: list[engine.Event],
+        host_t_s: float,
+        torque: npt.NDArray[np.float64],
+        eng: engine.Engine,
+        *,
+        base: int | None = None,
+    ) -> None:
+        for event in events:
+            match event:
+                case engine.CueFired():
+                    sound, pattern, kind = _CUE_SOUND[event.kind]
+                    # Latency is measured up to the call that starts the sound.
+                    self.cue_latency.record(time.monotonic() - host_t_s)
+                    self._player.play(sound)
+                    self._tool_cue(pattern)
+                    r = self._current
+                    if r is not None:
+                        self._offer(
+                            LiveCue(
+                                station=self.station_id,
+                                wrench_id=self.wrench_id,
+                                rundown_id=r.result_id,
+                                t_s=max(event.t_s - r.t0, 0.0),
+                                cue=kind,
+                                torque_nm=_at(torque, event.index, base, self._last_torque),
+                            )
+                        )
+                case engine.RundownStarted():
+                    self._start(event)
+                case engine.SnugReached():
+                    r = self._current
+                    if r is not None:
+                        self._offer(
+                            LiveSnug(
+                                station=self.station_id,
+                                wrench_id=self.wrench_id,
+                                rundown_id=r.result_id,
+                                t_s=max(event.t_s - r.t0, 0.0),
+                                torque_nm=event.torque_nm,
+                            )
+                        )
+                case engine.StopReached():
+                    r = self._current
+                    if r is not None and event.last_step:
+                        self._offer(
+                            LiveStop(
+                                station=self.station_id,
+                                wrench_id=self.wrench_id,
+                                rundown_id=r.result_id,
+                                t_s=max(event.t_s - r.t0, 0.0),
+                                trigger=STOP_TRIGGERS[event.trigger],
+                                torque_nm=event.torque_nm,
+                                angle_deg=event.angle_deg,
+                            )
+                        )
+                case engine.OverTorque():
+                    _log.warning(
+                        "%s %s: over-torque %.2f N*m (limit %.2f)",
+                        self.wrench_id,
+                        self.link.address,
+                        event.torque_nm,
+                        event.limit_nm,
+                    )
+                    self._player.play(CueSound.STOP)
+                    self._tool_cue(CuePattern.STOP)
+                case engine.YieldDetected():
+                    _log.info(
+                        "%s %s: yield at %.2f N*m",
+                        self.wrench_id,
+                        self.link.address,
+                        event.point.torque_nm,
+                    )
+                case engine.EngineFault():
+                    _log.error(
+                        "%s %s: engine fault: %s", self.wrench_id, self.link.address, event.message
+                    )
+                case engine.RundownFinished():
+                    await self._finish(event.result)
+        del eng
+
+    def _start(self, event: engine.RundownStarted) -> None:
+        order = self._station.work_order(self.wrench_id)
+        assert self.engine is not None
+        if order is None or order.program is not self.engine.program:
+            # The selection changed since the engine armed; the rundown runs what it armed with.
+            order = WorkOrder(
+                program=self.engine.program,
+                part_id=order.part_id if order else "unassigned",
+                joint_position=order.joint_position if order else "unassigned",
+            )
+        extra: list[Reason] = []
+        if self._station.is_locked(self.wrench_id):
+            extra.append(Reason.ABORTED)
+        if self._calibration_blocks():
+            extra.append(Reason.CALIBRATION_OVERDUE)
+        self._current = _Rundown(
+            result_id=new_uuid7(), order=order, t0=event.t_s, extra=tuple(extra)
+        )
+        self._abort = False
+        self.stats.rundowns += 1
+        if extra:
+            _log.warning(
+                "%s %s: rundown refused (%s); it is recorded NOK",
+                self.wrench_id,
+                self.link.address,
+                ", ".join(r.value for r in extra),
+            )
+            self._player.play(CueSound.LOCKED)
+            self._tool_cue(CuePattern.LOCKED)
+
+    async def _finish(self, result: engine.RundownResult) -> None:
+        current, self._current = self._current, None
+        self._abort = False
+        if current is None:  # every finish follows a start; kept total for safety
+            assert self.engine is not None
+            current = _Rundown(
+                result_id=new_uuid7(),
+                order=WorkOrder(
+                    program=self.engine.program, part_id="unassigned", joint_position="unassigned"
+                ),
+                t0=result.start_t_s,
+                extra=(),
+            )
+        anchor = self._anchor or ClockAnchor(
+            sensor_t_s=result.end_t_s,
+            host_t_s=time.monotonic(),
+            wall_minus_monotonic_s=time.time() - time.monotonic(),
+        )
+        info = self.link.info
+        payload = build_result(
+            result,
+            ResultContext(
+                result_id=current.result_id,
+                station_id=self.station_id,
+                wrench_id=self.wrench_id,
+                serial=safe_serial(None if info is None else info.serial, self.wrench_id),
+                calibration=self._calibration(),
+                program=current.order.program,
+                part_id=current.order.part_id,
+                joint_position=current.order.joint_position,
+                clock=anchor,
+                extra_reasons=current.extra,
+            ),
+        )
+        ok = payload.status is Judgement.OK
+        self._player.play(CueSound.OK if ok else CueSound.NOK)
+        self._tool_cue(CuePattern.OK if ok else CuePattern.NOK)
+        _log.info(
+            "%s %s: rundown %s %s%s at %s/%s (%.2f N*m)",
+            self.wrench_id,
+            self.link.address,
+            payload.id,
+            payload.status.value,
+            "" if ok else " " + ",".join(r.value for r in payload.reasons),
+            payload.part_id,
+            payload.joint_position,
+            payload.final_torque_nm,
+        )
+        self._unstored.append(payload)
+        await self._store_unstored()
+
+    async def _store_unstored(self) -> None:
+        """Durable first, then the station state: in order, stop at the first refusal."""
+        while self._unstored:
+            payload = self._unstored[0]
+            try:
+                await self._results.put_result(payload)
+            except OutboxError as exc:
+                self.stats.results_unstored = len(self._unstored)
+                _log.error(
+                    "%s %s: result %s kept in memory, not stored: %s",
+                    self.wrench_id,
+                    self.link.address,
+                    payload.id,
+                    exc,
+                )
+                return
+            self._unstored.popleft()
+            self.stats.results_stored += 1
+            self.stats.results_unstored = len(self._unstored)
+            self._station.position_done(self.wrench_id, payload.joint_position, payload.status)
+
+    # -- idle, loss ---------------------------------------------------------------------
+
+    async def _on_idle(self, host_t_s: float) -> None:
+        eng = self.engine
+        if eng is not None and self._current is not None and self._last_t is not None:
+            t_est = self._sensor_time_at(host_t_s)
+            if self._abort:
+                await self._act(eng.abort(t_est), host_t_s, _EMPTY, eng)
+            else:
+                await self._act(eng.tick(t_est), host_t_s, _EMPTY, eng)
+        if self._unstored:
+            await self._store_unstored()
+        self._publish_status()
+
+    async def _on_lost(self, lost: LinkLost) -> None:
+        self.stats.links_lost += 1
+        self._cue_queue = None  # nothing more can reach the tool on this connection
+        _log.warning("%s %s: link lost", self.wrench_id, self.link.address)
+        eng = self.engine
+        if eng is not None and self._last_t is not None:
+            await self._act(
+                eng.link_lost(self._sensor_time_at(lost.host_t_s)), lost.host_t_s, _EMPTY, eng
+            )
+
+    def _sensor_time_at(self, host_t_s: float) -> float:
+        assert self._last_t is not None
+        assert self._last_host is not None
+        return self._last_t + max(host_t_s - self._last_host, 0.0)
+
+    # -- outputs --------------------------------------------------------------------------
+
+    def _cue(self, pattern: CuePattern, *, sound: CueSound) -> None:
+        self._player.play(sound)
+        self._tool_cue(pattern)
+
+    def _tool_cue(self, pattern: CuePattern) -> None:
+        queue = self._cue_queue
+        if queue is None:
+            return
+        data = encode_cue(pattern, CUE_DURATION_MS[pattern])
+        if queue.full():
+            with contextlib.suppress(asyncio.QueueEmpty):
+                queue.get_nowait()  # the oldest cue is the stalest
+            self.stats.cue_writes_dropped += 1
+        queue.put_nowait(data)
+
+    def _offer(self, event: LiveEventPayload) -> None:
+        self._live.offer(self.wrench_id, event)
+        self.stats.live_offered += 1
+
+    def _progress(self, host_t_s: float, last_t: float) -> None:
+        current = self._current
+        if current is None or host_t_s - current.last_progress_host_s < self._progress_s:
+            return
+        current.last_progress_host_s = host_t_s
+        self._offer(
+            LiveProgress(
+                station=self.station_id,
+                wrench_id=self.wrench_id,
+                rundown_id=current.result_id,
+                t_s=max(last_t - current.t0, 0.0),
+                torque_nm=self._last_torque,
+                # The engine exposes no running angle; angle arrives with snug and stop.
+                angle_deg=None,
+            )
+        )
+
+    def _calibration_state(self) -> ConfigCalibration | None:
+        due = self.config.calibration_due
+        return None if due is None else calibration_state(due, self._today())
+
+    def _calibration(self) -> Calibration:
+        state = self._calibration_state()
+        return Calibration(
+            state=CalibrationState.UNKNOWN if state is None else _CALIBRATION[state],
+            due_date=self.config.calibration_due,
+        )
+
+    def _calibration_blocks(self) -> bool:
+        return (
+            self.config.block_when_calibration_overdue
+            and self._calibration_state() is ConfigCalibration.OVERDUE
+        )
+
+    def _publish_status(self, *, force: bool = False) -> None:
+        info = self.link.info
+        connected = self.link.connected
+        calibration = self._calibration()
+        locked = self._station.is_locked(self.wrench_id)
+        battery = self._battery if connected else None
+        serial = None if info is None else safe_serial(info.serial, self.wrench_id)
+        key = (connected, battery, calibration, locked, serial)
+        if not force and key == self._last_status:
+            return
+        self._last_status = key
+        self._status.offer_status(
+            WrenchStatus(
+                station=self.station_id,
+                wrench_id=self.wrench_id,
+                serial=serial,
+                connected=connected,
+                battery_pct=None if battery is None else max(0, min(100, battery)),
+                torque_max_nm=self.config.torque_max_nm if info is None else info.torque_max_nm,
+                calibration=calibration,
+                locked=locked,
+                at=dt.datetime.now(dt.UTC),
+            )
+        )
+
+
+_EMPTY: Final[npt.NDArray[np.float64]] = np.zeros(0)
+_AXES: Final[dict[str, Literal["x", "y", "z"]]] = {"x": "x", "y": "y", "z": "z"}
+
+
+def _at(torque: npt.NDArray[np.float64], index: int, base: int | None, fallback: float) -> float:
+    if base is None:
+        return fallback
+    k = index - base
+    return float(torque[k]) if 0 <= k < torque.shape[0] else fallback
