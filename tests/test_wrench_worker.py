@@ -20,7 +20,8 @@ import dataclasses
 import datetime as dt
 import json
 import random
-from collections.abc import AsyncIterator, Iterable
+import time
+from collections.abc import AsyncIterator, Callable, Iterable
 from pathlib import Path
 from typing import Any
 
@@ -32,6 +33,7 @@ from clampd.daemon.runtime import (
     AsyncOutbox,
     BleakWrenchLink,
     Entry,
+    Notification,
     NullCuePlayer,
     OutboxResultSink,
     WorkOrder,
@@ -71,14 +73,17 @@ TORQUE_PROGRAM = {
     "torque_window": ["31 N*m", "41 N*m"],
     "angle_window": ["3 deg", "90 deg"],
 }
-# Torque plus angle: 30 deg after a 10 N*m snug, window 25-35 deg (demo values).
+# Torque plus angle: 14 deg after a 10 N*m snug, window 11-17 deg; the simulated joints climb
+# about 3 N*m per degree after snug, so the target stays below yield (demo values). A short
+# timeout ends a rundown released before its target quickly.
 ANGLE_PROGRAM = {
     "id": "cover-m10-angle",
     "strategy": "torque-angle",
     "snug_torque": "10 N*m",
-    "target_angle": "30 deg",
-    "angle_window": ["25 deg", "35 deg"],
+    "target_angle": "14 deg",
+    "angle_window": ["11 deg", "17 deg"],
     "torque_window": ["15 N*m", "60 N*m"],
+    "timeout": "1.5 s",
 }
 # Short free run-down before the head seats, so a rundown takes about a second of real time
 # (the virtual wrench streams in real time).
@@ -149,6 +154,13 @@ class Rig:
                     return sorted(entries, key=lambda e: e.seq)
                 await asyncio.sleep(0.05)
 
+    async def until(self, condition: Callable[[], bool], timeout_s: float = 20.0) -> None:
+        """Wait until ``condition()`` holds (polled: the rig has no event for everything)."""
+        async with asyncio.timeout(timeout_s):
+            while True:
+                if condition():
+                    return
+                await asyncio.sleep(0.01)
 
     async def parts_done(self, n: int, timeout_s: float = 10.0) -> None:
         """Wait until the simulated operator has finished ``n`` parts."""
@@ -287,3 +299,138 @@ async def test_operator_stops_on_the_tool_cue_and_the_result_is_ok_and_durable(r
     assert connected[-1].serial == "SIM-210-A"
     assert rig.worker.stats.frames_corrupt == 0
     assert len(rig.worker.cue_latency.snapshot()) >= 1
+
+
+@pytest.mark.parametrize(
+    "rig",
+    [
+        Setup(
+            program=dict(ANGLE_PROGRAM),
+            # Ignores every cue and stops by feel soon after snug: far short of the window.
+            operator=OperatorParams(
+                steady_rate_dps=30.0, ignore_cues=True, stop_at_torque_nm=11.0, start_delay_s=0.5
+            ),
+        )
+    ],
+    indirect=True,
+)
+async def test_operator_who_ignores_cues_and_stops_short_is_nok_angle_low(rig: Rig) -> None:
+    (entry,) = await rig.results(1)
+    result = payload_of(entry)
+    assert result.status is Judgement.NOK
+    assert "angle_low" in {r.value for r in result.reasons}
+    assert result.final_angle_deg is not None
+    assert result.final_angle_deg < 11.0  # below the window's minimum
+    assert result.windows is not None
+    assert (result.windows.angle_min_deg, result.windows.angle_max_deg) == (11.0, 17.0)
+    assert result.strategy.value == "torque_angle"
+    assert entry.status == "NOK"
+    # A NOK result is stored and reported, but the position stays to be redone.
+    assert rig.station.done == [("bolt-1", Judgement.NOK)]
+    assert rig.station.next == 0
+    assert CuePattern.NOK in [p for _, p, _ in rig.sensor.cues]
+
+
+@pytest.mark.parametrize("rig", [Setup(joints=2)], indirect=True)
+async def test_link_lost_mid_rundown_is_nok_with_partial_curve_and_the_link_comes_back(
+    rig: Rig,
+) -> None:
+    # Drop the radio once torque is past snug (the live snug event says so).
+    await rig.until(lambda: any(isinstance(ev, LiveSnug) for _, ev in rig.sinks.live))
+    await rig.wrench.go_out_of_range()
+    (lost,) = await rig.results(1)
+    first = payload_of(lost)
+    assert first.status is Judgement.NOK
+    # The loss ends it; the windows are judged on what was reached (short of them here).
+    assert first.reasons[0].value == "link_lost"
+    assert first.stop_trigger.value == "link_lost"
+    assert first.snug_torque_nm is not None
+    assert first.peak_torque_nm >= 8.0  # the partial curve up to the loss is kept
+    assert first.curve.raw_sample_count > 10
+    assert max(first.curve.torque_nm) == pytest.approx(first.peak_torque_nm)
+    assert rig.worker.stats.links_lost == 1
+    assert any(not s.connected for s in rig.sinks.statuses[1:])
+    assert rig.station.done == [("bolt-1", Judgement.NOK)]
+
+    # Back in range: the reconnect loop finds it without help. The operator finishes the
+    # interrupted joint (judged on its own, whatever it shows), then the next joint is OK.
+    await rig.wrench.come_back_in_range()
+    ok: RundownResult | None = None
+    async with asyncio.timeout(60):
+        while ok is None:
+            entries = await rig.results(len(await rig.outbox.list()) + 1, timeout_s=60.0)
+            ok = next((r for r in map(payload_of, entries[1:]) if r.status is Judgement.OK), None)
+    assert ok.joint_position == "bolt-1"  # the NOK position is redone first
+    assert rig.link.connections == 2
+    assert rig.wrench.connections == 2
+    assert rig.sinks.statuses[-1].connected
+
+
+@pytest.mark.parametrize("rig", [Setup()], indirect=True)
+async def test_corrupt_notifications_are_counted_and_the_worker_keeps_judging(rig: Rig) -> None:
+    await rig.until(lambda: rig.worker.stats.frames >= 5)
+    # Injected at the seam, on top of the real connection (PROFILE.md "must" rules broken):
+    bad = [
+        b"",  # empty
+        b"\x02" + bytes(19),  # version 2
+        b"\x01\x00",  # shorter than the header
+        bytes.fromhex("01000000000000000000e8030200000ad7233ccdcccc3d"),  # count 2, no samples
+        bytes.fromhex("0110000000000000e80301000ad7233ccdcccc3d0000000000000000"),  # reserved flag
+    ]
+    for data in bad:
+        rig.link.inject(Notification(time.monotonic(), data))
+    (entry,) = await rig.results(1)
+    assert rig.worker.stats.frames_corrupt == len(bad)
+    assert payload_of(entry).status is Judgement.OK
+    assert rig.task.done() is False
+
+
+@pytest.mark.parametrize("rig", [Setup()], indirect=True)
+async def test_locked_tool_gets_the_locked_cue_and_its_rundown_is_recorded_nok(rig: Rig) -> None:
+    rig.station.locked = True
+    (entry,) = await rig.results(1)
+    result = payload_of(entry)
+    assert result.status is Judgement.NOK
+    assert "aborted" in {r.value for r in result.reasons}
+    assert CuePattern.LOCKED in [p for _, p, _ in rig.sensor.cues]
+    assert rig.station.next == 0
+    assert any(s.locked for s in rig.sinks.statuses)
+
+
+@pytest.mark.parametrize(
+    "rig",
+    [Setup(config={"calibration_due": "2020-01-31", "block_when_calibration_overdue": True})],
+    indirect=True,
+)
+async def test_overdue_calibration_is_flagged_and_blocks_when_configured(rig: Rig) -> None:
+    (entry,) = await rig.results(1)
+    result = payload_of(entry)
+    assert result.status is Judgement.NOK
+    assert "calibration_overdue" in {r.value for r in result.reasons}
+    assert result.wrench.calibration.state.value == "overdue"
+    assert result.wrench.calibration.due_date == dt.date(2020, 1, 31)
+    assert rig.sinks.statuses[-1].calibration.state.value == "overdue"
+    assert CuePattern.LOCKED in [p for _, p, _ in rig.sensor.cues]
+
+
+@pytest.mark.parametrize(
+    "rig",
+    [Setup(config={"calibration_due": "2020-01-31", "block_when_calibration_overdue": False})],
+    indirect=True,
+)
+async def test_overdue_calibration_without_blocking_is_only_flagged(rig: Rig) -> None:
+    (entry,) = await rig.results(1)
+    result = payload_of(entry)
+    assert result.status is Judgement.OK, result.reasons
+    assert result.wrench.calibration.state.value == "overdue"
+
+
+@pytest.mark.parametrize("rig", [Setup()], indirect=True)
+async def test_abort_request_ends_the_rundown_nok_aborted(rig: Rig) -> None:
+    assert rig.worker.request_abort() is False  # nothing in progress yet
+    await rig.until(lambda: any(isinstance(ev, LiveSnug) for _, ev in rig.sinks.live))
+    assert rig.worker.request_abort() is True
+    (entry,) = await rig.results(1)
+    result = payload_of(entry)
+    assert result.reasons[0].value == "aborted"
+    assert result.stop_trigger.value == "aborted"
