@@ -72,6 +72,9 @@ _MAX_LAG_S = 0.25
 # the battery level is checked for a change to notify. Both are idle-time costs only.
 _IDLE_POLL_S = 0.05
 _BATTERY_POLL_S = 1.0
+# How long shutdown waits for the loops to notice the stop flag (each wakes within
+# _IDLE_POLL_S or one frame span) before cancelling them.
+_STOP_GRACE_S = 1.0
 # ATT header of a notification: opcode (1) + handle (2) (Core spec Vol 3 Part F 3.4.7.1).
 _NOTIFY_HEADER = 3
 # Supervision timeout (HCI error 0x08): what a central sees when the wrench leaves range.
@@ -166,6 +169,7 @@ class WrenchPeripheral:
         self._wake = asyncio.Event()
         self._readvertise = asyncio.Event()
         self._closing = False
+        self._stop = asyncio.Event()
         self._tasks: list[asyncio.Task[None]] = []
         self._last_battery = -1
 
@@ -215,16 +219,21 @@ class WrenchPeripheral:
         return self
 
     async def __aexit__(self, *exc: object) -> None:
-        # bumble's HCI command path can swallow a cancellation that lands mid-command, so
-        # the loops also stop on a flag and are woken to see it.
+        # The loops stop on a flag first and are only cancelled if they do not: a task
+        # cancelled mid-HCI-command leaves bumble a response future it later fails to
+        # resolve (InvalidStateError in the log), and bumble can swallow a cancellation
+        # that lands mid-command (then the task would never end).
         self._closing = True
+        self._stop.set()
         self._wake.set()
         self._readvertise.set()
-        for task in self._tasks:
-            task.cancel()
-        for task in self._tasks:
-            with contextlib.suppress(asyncio.CancelledError):
-                await task
+        if self._tasks:
+            _done, pending = await asyncio.wait(self._tasks, timeout=_STOP_GRACE_S)
+            for task in pending:
+                task.cancel()
+            for task in pending:
+                with contextlib.suppress(asyncio.CancelledError):
+                    await task
         self._tasks = []
         with contextlib.suppress(Exception):
             await self.device.power_off()
@@ -417,4 +426,6 @@ class WrenchPeripheral:
                     conn, self._battery.battery_level_characteristic, level
                 )
             self._last_battery = level
-            await asyncio.sleep(_BATTERY_POLL_S)
+            with contextlib.suppress(TimeoutError):
+                async with asyncio.timeout(_BATTERY_POLL_S):
+                    await self._stop.wait()
