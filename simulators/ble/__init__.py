@@ -20,8 +20,15 @@ from clampd.simulators.ble._rig import (
     HciHub,
     HciSpecError,
     VirtualAir,
+    VirtualController,
     open_central,
     parse_tcp_server_spec,
+)
+from clampd.simulators.ble._standalone import (
+    StandaloneError,
+    StandaloneWrench,
+    address_for_name,
+    serve_wrench,
 )
 
 __all__ = [
@@ -36,9 +43,14 @@ __all__ = [
     "HciHub",
     "HciSpecError",
     "SizedFrameSource",
+    "StandaloneError",
+    "StandaloneWrench",
     "VirtualAir",
+    "VirtualController",
     "WrenchIdentity",
     "WrenchPeripheral",
+    "address_for_name",
     "open_central",
     "parse_tcp_server_spec",
+    "serve_wrench",
 ]

@@ -47,7 +47,13 @@ from clampd.simulators.ble._rig import (
     parse_tcp_server_spec,
 )
 
-__all__ = ["StandaloneWrench", "address_for_name", "serve_wrench"]
+__all__ = [
+    "StandaloneError",
+    "StandaloneWrench",
+    "address_for_name",
+    "install_stop_signals",
+    "serve_wrench",
+]
 
 logger = logging.getLogger(__name__)
 
