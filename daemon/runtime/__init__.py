@@ -47,6 +47,18 @@ from clampd.daemon.runtime._cues import (
     render,
     write_wav,
 )
+from clampd.daemon.runtime._mqtt import (
+    ACK_TIMEOUT_S,
+    LIVE_INTERVAL_S,
+    BrokerRefusedError,
+    BrokerUnavailable,
+    IncomingCommand,
+    LiveLimiter,
+    MqttSession,
+    MqttSessionError,
+    SessionState,
+    SessionStats,
+)
 from clampd.daemon.runtime._outbox import (
     AsyncOutbox,
     Entry,
@@ -78,11 +90,15 @@ from clampd.daemon.runtime._wrench import (
 )
 
 __all__ = [
+    "ACK_TIMEOUT_S",
+    "LIVE_INTERVAL_S",
     "SAMPLE_RATE",
     "AsyncOutbox",
     "BatteryLevel",
     "BleakWrenchLink",
     "BrokerConfig",
+    "BrokerRefusedError",
+    "BrokerUnavailable",
     "CalibrationState",
     "ClockAnchor",
     "ConfigError",
@@ -94,6 +110,7 @@ __all__ = [
     "DeviceCuePlayer",
     "Entry",
     "Idle",
+    "IncomingCommand",
     "JournalConfig",
     "LatencyLog",
     "LinkError",
@@ -103,8 +120,11 @@ __all__ = [
     "LinkNotFoundError",
     "LinkProfileError",
     "LinkRefusedError",
+    "LiveLimiter",
     "LiveSink",
     "LoadedConfig",
+    "MqttSession",
+    "MqttSessionError",
     "Notification",
     "NullCuePlayer",
     "Outbox",
@@ -120,6 +140,8 @@ __all__ = [
     "PlaintextRemoteError",
     "ResultContext",
     "ResultSink",
+    "SessionState",
+    "SessionStats",
     "StationConfig",
     "StationPort",
     "StationSection",
