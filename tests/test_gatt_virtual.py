@@ -506,3 +506,24 @@ async def test_no_blocking_calls_in_the_loop(bench: Bench, blockbuster: object) 
         await client.write_gatt_char(CONTROL_UUID, b"\x01", response=True)
         await inbox.wait_samples(300)
     assert_continuous(inbox.frames)
+
+
+async def test_a_crashing_sensor_is_logged_and_the_wrench_falls_silent(
+    bench: Bench, caplog: pytest.LogCaptureFixture
+) -> None:
+    def broken() -> tuple[bytes, float]:
+        raise RuntimeError("sensor model bug")
+
+    bench.source.next_notification = broken  # type: ignore[method-assign]
+    async with BleakClient(bench.wrench.address, **bench.air.bleak_kwargs()) as client:
+        inbox = Inbox()
+        await client.start_notify(SAMPLES_UUID, inbox)
+        await client.write_gatt_char(CONTROL_UUID, b"\x01", response=True)
+        for _ in range(100):
+            if "notify stopped" in caplog.text:
+                break
+            await asyncio.sleep(0.01)
+        assert "clampd[W-17].notify stopped" in caplog.text
+        assert inbox.frames == []
+        # The GATT server still answers: only the stream is gone.
+        assert len(await client.read_gatt_char(INFO_UUID)) == 39

@@ -29,7 +29,7 @@ import contextlib
 import logging
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
-from bumble import att, gatt, hci
+from bumble import att, core, gatt, hci
 from bumble.core import UUID, AdvertisingData
 from bumble.profiles.battery_service import BatteryService
 from bumble.profiles.device_information_service import DeviceInformationService
@@ -215,6 +215,8 @@ class WrenchPeripheral:
             loop.create_task(self._watch_battery(), name=f"clampd[{self.name}].battery"),
             loop.create_task(self._keep_advertising(), name=f"clampd[{self.name}].advertise"),
         ]
+        for task in self._tasks:
+            task.add_done_callback(self._report_crash)
         logger.info("%s %s: advertising", self.name, self.address)
         return self
 
@@ -237,6 +239,14 @@ class WrenchPeripheral:
         self._tasks = []
         with contextlib.suppress(Exception):
             await self.device.power_off()
+
+    def _report_crash(self, task: asyncio.Task[None]) -> None:
+        # A loop that dies (a bug in the sensor model, say) is logged at once, not only
+        # when the peripheral shuts down; the wrench then simply falls silent.
+        if not task.cancelled() and (exc := task.exception()) is not None:
+            logger.error(
+                "%s %s: %s stopped", self.name, self.address, task.get_name(), exc_info=exc
+            )
 
     @property
     def address(self) -> str:
@@ -396,8 +406,13 @@ class WrenchPeripheral:
                         conn.att_mtu,
                     )
             else:
-                await self.device.gatt_server.notify_subscriber(conn, self._samples, frame)
-                self.notifications_sent += 1
+                try:
+                    await self.device.gatt_server.notify_subscriber(conn, self._samples, frame)
+                except core.BaseBumbleError as exc:
+                    # The link went down under us; the disconnection event follows.
+                    logger.info("%s: notification not sent: %s", self.name, exc)
+                else:
+                    self.notifications_sent += 1
             now = loop.time()
             due = (now if due is None else due) + max(span_s, 0.0)
             delay = due - now
@@ -422,9 +437,10 @@ class WrenchPeripheral:
             level = self._battery_level()
             conn = self._connection
             if level != self._last_battery and conn is not None:
-                await self.device.gatt_server.notify_subscriber(
-                    conn, self._battery.battery_level_characteristic, level
-                )
+                with contextlib.suppress(core.BaseBumbleError):  # link down: nothing to tell
+                    await self.device.gatt_server.notify_subscriber(
+                        conn, self._battery.battery_level_characteristic, level
+                    )
             self._last_battery = level
             with contextlib.suppress(TimeoutError):
                 async with asyncio.timeout(_BATTERY_POLL_S):
