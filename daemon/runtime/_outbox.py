@@ -17,6 +17,9 @@ Invariants
   the same id with the same topic and payload again is a no-op that returns ``False``;
   putting it with *different* content raises ``OutboxConflictError`` rather than silently
   dropping one of the two (that would be a bug upstream, and losing either is worse).
+  Idempotence lasts as long as the row: once retention has pruned a sent result, its id
+  is unknown again and a late duplicate would be stored and published once more (which
+  consumers de-duplicating by id absorb; at-least-once is the contract).
 - Each ``put`` and ``mark_sent`` is one transaction in WAL mode with
   ``synchronous=FULL``: when the call returns, the row is on stable storage (SQLite docs,
   "PRAGMA synchronous": FULL syncs the WAL on every commit, so a commit survives a power
