@@ -43,8 +43,8 @@ class WrenchProcess:
     hci: str
 
 
-@contextlib.asynccontextmanager
-async def wrench_process(*args: str) -> AsyncIterator[WrenchProcess]:
+async def start_wrench(*args: str) -> WrenchProcess:
+    """Start ``clampd simulate wrench ARGS`` and wait for its ready line."""
     proc = await asyncio.create_subprocess_exec(
         sys.executable,
         "-m",
@@ -62,8 +62,21 @@ async def wrench_process(*args: str) -> AsyncIterator[WrenchProcess]:
         if not line.startswith("ready "):
             assert proc.stderr is not None
             raise AssertionError(f"no ready line: {line!r} {(await proc.stderr.read())!r}")
-        fields = dict(item.split("=", 1) for item in line.split()[1:])
-        yield WrenchProcess(proc, fields["name"], fields["address"], fields["hci"])
+    except BaseException:
+        proc.kill()
+        await proc.wait()
+        raise
+    fields = dict(item.split("=", 1) for item in line.split()[1:])
+    return WrenchProcess(proc, fields["name"], fields["address"], fields["hci"])
+
+
+@contextlib.asynccontextmanager
+async def wrench_process(*args: str) -> AsyncIterator[WrenchProcess]:
+    """A wrench process that must stop cleanly (exit 0) on SIGTERM at the end."""
+    wrench = await start_wrench(*args)
+    proc = wrench.proc
+    try:
+        yield wrench
         proc.send_signal(signal.SIGTERM)
         async with asyncio.timeout(10.0):
             assert await proc.wait() == 0
@@ -162,6 +175,27 @@ async def test_two_wrench_processes_share_one_link() -> None:
         for wrench in (first, second):
             async with BleakClient(wrench.address, **central.bleak_kwargs()) as client:
                 assert check_continuous(await collect(client, 56)) >= 56
+
+
+async def test_a_vanished_wrench_process_is_reported_as_link_loss() -> None:
+    lost = asyncio.Event()
+    wrench = await start_wrench("--name", "W-44", "--idle")
+    try:
+        async with open_central(wrench.hci) as central:
+            client = BleakClient(
+                wrench.address,
+                disconnected_callback=lambda _c: lost.set(),
+                **central.bleak_kwargs(),
+            )
+            await client.connect()
+            wrench.proc.kill()  # the whole radio side vanishes at once
+            async with asyncio.timeout(10.0):
+                await lost.wait()
+            assert not client.is_connected
+    finally:
+        if wrench.proc.returncode is None:
+            wrench.proc.kill()
+        await wrench.proc.wait()
 
 
 @pytest.mark.parametrize(

@@ -30,6 +30,7 @@ from clampd.simulators.ble import (
     INFO_UUID,
     SAMPLES_UUID,
     SERVICE_UUID,
+    PeripheralError,
     SizedFrameSource,
     VirtualAir,
     WrenchIdentity,
@@ -527,3 +528,10 @@ async def test_a_crashing_sensor_is_logged_and_the_wrench_falls_silent(
         assert inbox.frames == []
         # The GATT server still answers: only the stream is gone.
         assert len(await client.read_gatt_char(INFO_UUID)) == 39
+
+
+@pytest.mark.parametrize("name", ["", "wrench\n1", "schlüssel"])
+async def test_a_name_that_cannot_be_advertised_is_refused(name: str) -> None:
+    async with VirtualAir() as air:
+        with pytest.raises(PeripheralError, match="printable ASCII"):
+            await air.add_wrench(StickSource(), name=name)

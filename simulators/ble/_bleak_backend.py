@@ -52,6 +52,9 @@ _T = TypeVar("_T")
 # ATT MTU requested on connect: 247 lets a 244-byte notification (28 samples) through
 # (protocol/PROFILE.md); the default 23 cuts notifications to 20 bytes (measured).
 DEFAULT_MTU = 247
+# A controller confirms a disconnection at once on the virtual link; one that has not
+# within 5 s is gone (its hub process died), so we stop waiting. Modelling choice.
+_DISCONNECT_TIMEOUT_S = 5.0
 # ATT notification/write header: opcode (1) + handle (2) (Core spec Vol 3 Part F 3.4).
 _ATT_HEADER = 3
 
@@ -152,7 +155,7 @@ class BumbleBleakClient(BaseBleakClient):
                 raise BleakDeviceNotFoundError(
                     self.address, f"{self.address} did not answer within {self._timeout} s"
                 ) from exc
-            except (core.ConnectionError, hci.HCI_Error) as exc:
+            except (core.BaseBumbleError, hci.HCI_Error) as exc:
                 raise BleakError(f"connecting to {self.address} failed: {exc}") from exc
         self._connection = conn
         self._closing = False
@@ -187,9 +190,15 @@ class BumbleBleakClient(BaseBleakClient):
         if conn is None or gone is None:
             return
         self._closing = True
-        with contextlib.suppress(hci.HCI_Error, core.InvalidStateError):
+        with contextlib.suppress(core.BaseBumbleError):
             await conn.disconnect()
-        await gone
+        try:
+            async with asyncio.timeout(_DISCONNECT_TIMEOUT_S):
+                await asyncio.shield(gone)
+        except TimeoutError:
+            # The controller never confirmed (its hub process died): forget the link.
+            logger.warning("%s: no disconnection confirmed, dropping the link", self.address)
+            self._on_disconnection(conn, hci.HCI_CONNECTION_TIMEOUT_ERROR)
 
     async def pair(self, *args: Any, **kwargs: Any) -> None:
         raise BleakError("the virtual wrench link has no security to pair with")

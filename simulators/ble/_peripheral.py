@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import logging
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
@@ -43,6 +44,7 @@ __all__ = [
     "SAMPLES_UUID",
     "SERVICE_UUID",
     "FrameSource",
+    "PeripheralError",
     "SizedFrameSource",
     "WrenchIdentity",
     "WrenchPeripheral",
@@ -116,23 +118,18 @@ class SizedFrameSource(Protocol):
         ...
 
 
+class PeripheralError(ValueError):
+    """A wrench set-up we cannot serve (the caller's input)."""
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
 class WrenchIdentity:
     """Device Information Service strings of one virtual wrench (invented demo values)."""
 
-    __slots__ = ("firmware", "manufacturer", "model", "serial")
-
-    def __init__(
-        self,
-        *,
-        manufacturer: str = "clampd virtual tools",
-        model: str = "VW-1 virtual wrench",
-        serial: str = "VW-000001",
-        firmware: str = "sim-1",
-    ) -> None:
-        self.manufacturer = manufacturer
-        self.model = model
-        self.serial = serial
-        self.firmware = firmware
+    manufacturer: str = "clampd virtual tools"
+    model: str = "VW-1 virtual wrench"
+    serial: str = "VW-000001"
+    firmware: str = "sim-1"
 
 
 class WrenchPeripheral:
@@ -141,7 +138,8 @@ class WrenchPeripheral:
     Use as ``async with WrenchPeripheral(device, source, name=...)``: entering powers the
     device on (its controller must already be attached) and starts advertising; leaving
     stops the pacing task and powers the device off. Counters (`notifications_sent`,
-    `frames_skipped`, `connections`) are for tests and benchmarks.
+    `frames_skipped`, `connections`) are for tests and benchmarks. Raises
+    `PeripheralError` for a name that cannot be advertised.
     """
 
     def __init__(
@@ -154,7 +152,7 @@ class WrenchPeripheral:
         advertising_interval_ms: float = ADVERTISING_INTERVAL_MS,
     ) -> None:
         if not name or not name.isascii() or not name.isprintable():
-            raise ValueError(f"wrench name must be non-empty printable ASCII, got {name!r}")
+            raise PeripheralError(f"wrench name must be non-empty printable ASCII, got {name!r}")
         self.device = device
         self.source = source
         self.name = name

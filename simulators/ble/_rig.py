@@ -353,7 +353,10 @@ async def open_central(
         try:
             yield BumbleCentral(dev)
         finally:
-            with contextlib.suppress(Exception):
-                await dev.power_off()
+            # Powering off a central whose hub is gone would wait out bumble's 10 s
+            # command timeout for a reset nobody can answer.
+            if not transport.source.terminated.done():
+                with contextlib.suppress(Exception):
+                    await dev.power_off()
     finally:
         await transport.close()
