@@ -217,9 +217,14 @@ def _summary(strategy: str, runs: Sequence[PreloadRun], program: Program) -> dic
     torques = np.array([r.final_torque_nm for r in runs])
     angles = np.array([r.final_angle_deg for r in runs])
     lo, hi = VDI_ALPHA_A_RANGE[strategy]
+    f_ok = np.array([r.preload_n for r in runs if r.ok], dtype=np.float64)
+    alpha_ok = float(f_ok.max() / f_ok.min()) if f_ok.size >= 2 and f_ok.min() > 0.0 else math.nan
     return {
         "joints": n,
         "alpha_a": rounded(alpha, 3),
+        # the same over the rundowns the engine judged OK (what reaches production)
+        "alpha_a_ok": rounded(alpha_ok, 3),
+        "joints_ok": int(f_ok.size),
         "preload_min_n": rounded(f_min, 0),
         "preload_mean_n": rounded(float(f.mean()), 0),
         "preload_max_n": rounded(f_max, 0),
