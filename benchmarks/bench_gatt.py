@@ -6,6 +6,8 @@ notifications/s of 28 samples, PROFILE.md) by a wide margin, or tests and the de
 measure the simulator instead of the daemon. The source here is unpaced (span 0), so the
 figures are the link's ceiling, not a wrench's rate.
 Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_gatt.py --benchmark-only``.
+Three figures: in-process (one loop, both ends), a `clampd simulate wrench` process
+paced at 4 kHz, and an unpaced wrench in another process behind the TCP HCI hub.
 Figures appear in ``extra_info`` (use ``--benchmark-columns`` or ``--benchmark-json``).
 """
 
@@ -134,6 +136,48 @@ async def _cross_process() -> dict[str, float]:
     }
 
 
+async def _serve_unpaced() -> None:
+    """Subprocess side of the TCP benchmark: an unpaced wrench behind an HCI hub."""
+    from bumble.device import Device
+    from bumble.hci import Address
+    from bumble.host import Host
+    from bumble.link import LocalLink
+    from bumble.transport.common import AsyncPipeSink
+
+    from clampd.simulators.ble import HciHub, VirtualController, WrenchPeripheral
+
+    link = LocalLink()  # type: ignore[no-untyped-call]
+    ctrl = VirtualController("bench", link=link)
+    dev = Device(
+        name="BENCH-T", address=Address("C0:DE:00:00:BE:01"), host=Host(ctrl, AsyncPipeSink(ctrl))
+    )
+    async with HciHub(link) as hub, WrenchPeripheral(dev, _Unpaced(), name="BENCH-T") as w:
+        print(f"ready address={w.address} hci={hub.spec}", flush=True)
+        await asyncio.Event().wait()
+
+
+async def _tcp_unpaced() -> dict[str, float]:
+    proc = await asyncio.create_subprocess_exec(
+        sys.executable, __file__, "serve", stdout=asyncio.subprocess.PIPE
+    )
+    assert proc.stdout is not None
+    try:
+        line = (await proc.stdout.readline()).decode()
+        fields = dict(item.split("=", 1) for item in line.split()[1:])
+        async with (
+            open_central(fields["hci"]) as central,
+            BleakClient(fields["address"], **central.bleak_kwargs()) as client,
+        ):
+            elapsed = await _stream(client, NOTIFICATIONS)
+    finally:
+        proc.terminate()
+        await proc.wait()
+    return {
+        "notifications_per_s": NOTIFICATIONS / elapsed,
+        "samples_per_s": 28 * NOTIFICATIONS / elapsed,
+    }
+
+
 def _record(benchmark: Any, results: list[dict[str, float]]) -> None:
     for key in results[0]:
         values = sorted(r[key] for r in results)
@@ -153,3 +197,13 @@ def test_cross_process_link(benchmark: Any) -> None:
         lambda: results.append(asyncio.run(_cross_process())), rounds=2, iterations=1
     )
     _record(benchmark, results)
+
+
+def test_tcp_hub_unpaced(benchmark: Any) -> None:
+    results: list[dict[str, float]] = []
+    benchmark.pedantic(lambda: results.append(asyncio.run(_tcp_unpaced())), rounds=2, iterations=1)
+    _record(benchmark, results)
+
+
+if __name__ == "__main__" and sys.argv[1:] == ["serve"]:
+    asyncio.run(_serve_unpaced())
