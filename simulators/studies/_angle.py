@@ -8,9 +8,10 @@ that whole chain can be measured: here over handle rates from 10 to 360 °/s, ea
 of its own, with a turn-on gyro bias drawn per wrench (σ 0.5 °/s per axis), bias drift, white
 noise, hand wobble and 16-bit quantisation (the simulator's sensor model).
 
-The operator ignores cues and stops at an angle of their own, 10–30° past the joint's true
-snug (elastic range of the population), with ratchet strokes; the engine runs the planner's
-torque-angle program only to count. The error is taken at the result's final point (the angle
+The operator ignores cues and decides to stop at an angle of their own, 10–30° past the
+joint's true snug, then stops a reaction time later (so fast cases end further on, some past
+yield), with ratchet strokes; the engine runs the planner's torque-angle program only to
+count. The error is taken at the result's final point (the angle
 reported to the plant): counted angle from snug minus the true rotation between the same two
 samples. Goal: |error| ≤ 0.5° + 0.5 % of the reading for 95 % of rundowns.
 """
@@ -59,8 +60,8 @@ ANGLE_GOAL_SHARE = 0.95
 # The wrench picks up 10–20° before contact here (modelling choice: keeps the slow cases short;
 # the free run adds nothing to the angle from snug).
 _POPULATION = dataclasses.replace(PRELOAD_POPULATION, contact_angle_deg=(10.0, 20.0))
-# Stop 10–30° past true snug: inside the elastic range of this population (yield onset is
-# ~30–40° past snug), so the torque stays in the wrench's range.
+# Decide to stop 10–30° past true snug: inside the elastic range of this population (yield
+# onset is ~30–40° past snug); the reaction time adds rate × ~0.2 s on top.
 _STOP_PAST_SNUG_DEG = (10.0, 30.0)
 
 
