@@ -17,10 +17,11 @@ Theory of operation
    (``play`` never blocks) and queued for the tool's control characteristic, which a second
    task of the connection writes, so a slow radio write never delays the next sample. Live
    events (snug, cue, stop, progress at a bounded rate) go to the ``LiveSink`` without
-   waiting. A finished rundown becomes the result payload (``_results.build_result``), is
-   put into the durable ``ResultSink`` first, and only then is the joint position marked done
-   in the station state. A result the sink refuses (outbox full, disk full) stays in memory
-   and is retried on every idle tick: nothing judged is dropped.
+   waiting. A finished rundown goes to the worker's results task, which maps it to the result
+   payload (``_results.build_result``, in a thread: it costs milliseconds), puts it into the
+   durable ``ResultSink`` and only then marks the joint position done in the station state.
+   The sample path never waits for a disk sync. A result the sink refuses (outbox full, disk
+   full) stays in memory, first in line, and is retried: nothing judged is dropped.
 
 Link loss ends the rundown in progress NOK ``link_lost`` with its partial curve (the engine
 keeps it); the result is stored like any other and the link reconnects on its own.
@@ -114,6 +115,7 @@ __all__ = [
     "CUE_DURATION_MS",
     "IDLE_S",
     "PROGRESS_INTERVAL_S",
+    "STORE_RETRY_S",
     "LiveSink",
     "StationPort",
     "StatusSink",
@@ -142,6 +144,9 @@ CUE_DURATION_MS: Final[dict[CuePattern, int]] = {
     CuePattern.NOK: 600,
     CuePattern.LOCKED: 600,
 }
+# A result the sink refused (outbox full, disk full) is offered again this often: often enough
+# to catch the moment the flusher made room, rare enough not to flood the log (our choice).
+STORE_RETRY_S: Final = 1.0
 # Cue writes waiting for the radio: a cue older than a few is stale (our choice).
 _CUE_QUEUE_BOUND: Final = 8
 # Log at most one line per this many corrupt frames after the first few (our choice).
@@ -258,6 +263,16 @@ class _Rundown:
     t0: float
     extra: tuple[Reason, ...]
     last_progress_host_s: float = -math.inf
+    order_stale: bool = False
+
+
+@dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
+class _Finished:
+    result: engine.RundownResult
+    rundown: _Rundown
+    anchor: ClockAnchor
+    serial: str
+    calibration: Calibration
 
 
 def engine_settings(
@@ -346,6 +361,7 @@ class WrenchWorker:
         self._abort = False
         self._unassigned_warned = False
         self._unstored: collections.deque[RundownResult] = collections.deque()
+        self._finished: asyncio.Queue[_Finished] = asyncio.Queue()
         self._cue_queue: asyncio.Queue[bytes] | None = None
         self._last_status: tuple[object, ...] | None = None
         self._battery: int | None = None
@@ -369,13 +385,16 @@ class WrenchWorker:
 
     @property
     def unstored_results(self) -> int:
-        """Judged results the sink refused so far and the worker still holds."""
-        return len(self._unstored)
+        """Judged results not yet durable (being mapped, stored, or refused and held)."""
+        return len(self._unstored) + self._finished.qsize()
 
     async def run(self) -> None:
-        """Serve the wrench forever (until cancelled): connect, stream, reconnect."""
+        """Serve the wrench forever (until cancelled): connect, stream, reconnect; store
+        results in a task of their own (``clampd[<wrench>].results``)."""
         self._publish_status(force=True)
-        await self.link.connect_forever(self._serve, rng=self._rng)
+        async with asyncio.TaskGroup() as tg:
+            tg.create_task(self._store_forever(), name=f"clampd[{self.wrench_id}].results")
+            await self.link.connect_forever(self._serve, rng=self._rng)
 
     # -- one connection ----------------------------------------------------------------
 
@@ -618,7 +637,11 @@ class WrenchWorker:
         if self._calibration_blocks():
             extra.append(Reason.CALIBRATION_OVERDUE)
         self._current = _Rundown(
-            result_id=new_uuid7(), order=order, t0=event.t_s, extra=tuple(extra)
+            result_id=new_uuid7(),
+            order=order,
+            t0=event.t_s,
+            extra=tuple(extra),
+            order_stale=self.unstored_results > 0,
         )
         self._abort = False
         self.stats.rundowns += 1
@@ -650,41 +673,78 @@ class WrenchWorker:
             host_t_s=time.monotonic(),
             wall_minus_monotonic_s=time.time() - time.monotonic(),
         )
-        info = self.link.info
-        payload = build_result(
-            result,
-            ResultContext(
-                result_id=current.result_id,
-                station_id=self.station_id,
-                wrench_id=self.wrench_id,
-                serial=safe_serial(None if info is None else info.serial, self.wrench_id),
-                calibration=self._calibration(),
-                program=current.order.program,
-                part_id=current.order.part_id,
-                joint_position=current.order.joint_position,
-                clock=anchor,
-                extra_reasons=current.extra,
-            ),
-        )
-        ok = payload.status is Judgement.OK
+        # The verdict cue now; mapping and storing follow in the results task, so that the
+        # samples of the next rundown are never held up by a disk sync.
+        ok = result.status is engine.Status.OK and not current.extra
         self._player.play(CueSound.OK if ok else CueSound.NOK)
         self._tool_cue(CuePattern.OK if ok else CuePattern.NOK)
-        _log.info(
-            "%s %s: rundown %s %s%s at %s/%s (%.2f N*m)",
-            self.wrench_id,
-            self.link.address,
-            payload.id,
-            payload.status.value,
-            "" if ok else " " + ",".join(r.value for r in payload.reasons),
-            payload.part_id,
-            payload.joint_position,
-            payload.final_torque_nm,
+        info = self.link.info
+        self._finished.put_nowait(
+            _Finished(
+                result=result,
+                rundown=current,
+                anchor=anchor,
+                serial=safe_serial(None if info is None else info.serial, self.wrench_id),
+                calibration=self._calibration(),
+            )
         )
-        self._unstored.append(payload)
-        await self._store_unstored()
 
-    async def _store_unstored(self) -> None:
-        """Durable first, then the station state: in order, stop at the first refusal."""
+    async def _store_forever(self) -> None:
+        """The results task: map, store durably, then advance the station; in rundown order.
+
+        A result the sink refuses stays first in line and is retried every ``STORE_RETRY_S``;
+        nothing judged is dropped and nothing later overtakes it.
+        """
+        while True:
+            item = await self._finished.get()
+            rundown = item.rundown
+            order = rundown.order
+            if rundown.order_stale:
+                # It started while the previous result was still being stored: the position
+                # it belongs to is the one in force now that that one is stored.
+                now = self._station.work_order(self.wrench_id)
+                if now is not None:
+                    order = dataclasses.replace(
+                        order, part_id=now.part_id, joint_position=now.joint_position
+                    )
+            # Off the loop: downsampling a long curve costs ~15 ms of Python (measured with
+            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues.
+            payload = await asyncio.to_thread(
+                build_result,
+                item.result,
+                ResultContext(
+                    result_id=rundown.result_id,
+                    station_id=self.station_id,
+                    wrench_id=self.wrench_id,
+                    serial=item.serial,
+                    calibration=item.calibration,
+                    program=order.program,
+                    part_id=order.part_id,
+                    joint_position=order.joint_position,
+                    clock=item.anchor,
+                    extra_reasons=rundown.extra,
+                ),
+            )
+            ok = payload.status is Judgement.OK
+            _log.info(
+                "%s %s: rundown %s %s%s at %s/%s (%.2f N*m)",
+                self.wrench_id,
+                self.link.address,
+                payload.id,
+                payload.status.value,
+                "" if ok else " " + ",".join(r.value for r in payload.reasons),
+                payload.part_id,
+                payload.joint_position,
+                payload.final_torque_nm,
+            )
+            self._unstored.append(payload)
+            while True:
+                if await self._store_unstored():
+                    break
+                await asyncio.sleep(STORE_RETRY_S)
+
+    async def _store_unstored(self) -> bool:
+        """Durable first, then the station state; False at the first refusal."""
         while self._unstored:
             payload = self._unstored[0]
             try:
@@ -698,11 +758,12 @@ class WrenchWorker:
                     payload.id,
                     exc,
                 )
-                return
+                return False
             self._unstored.popleft()
             self.stats.results_stored += 1
             self.stats.results_unstored = len(self._unstored)
             self._station.position_done(self.wrench_id, payload.joint_position, payload.status)
+        return True
 
     # -- idle, loss ---------------------------------------------------------------------
 
@@ -714,8 +775,6 @@ class WrenchWorker:
                 await self._act(eng.abort(t_est), host_t_s, _EMPTY, eng)
             else:
                 await self._act(eng.tick(t_est), host_t_s, _EMPTY, eng)
-        if self._unstored:
-            await self._store_unstored()
         self._publish_status()
 
     async def _on_lost(self, lost: LinkLost) -> None:
