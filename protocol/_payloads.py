@@ -49,6 +49,8 @@ __all__ = [
     "AlarmState",
     "Calibration",
     "CalibrationState",
+    "CapabilityIndices",
+    "ControlChartLimits",
     "CueKind",
     "Curve",
     "CurveUnits",
@@ -458,11 +460,50 @@ class Reply(OutboundModel):
         return self
 
 
+class CapabilityIndices(OutboundModel):
+    """Capability of one quantity against the program's window; null where undefined.
+
+    cm/cmk use the sample standard deviation of the window, cp/cpk the within-subgroup
+    R̄/d2 (definitions in clampd.daemon.quality). Null: a one-sided window has no cm/cp, a
+    window without limits or with no spread has none at all.
+    """
+
+    lsl: FiniteFloat | None = Field(description="Lower limit used (the window's minimum).")
+    usl: FiniteFloat | None = Field(description="Upper limit used (the window's maximum).")
+    cm: FiniteFloat | None
+    cmk: FiniteFloat | None
+    cp: FiniteFloat | None
+    cpk: FiniteFloat | None
+
+
+class ControlChartLimits(OutboundModel):
+    """X̄–R chart limits fixed from baseline subgroups, in the unit the parent field names."""
+
+    subgroup_size: int = Field(ge=2, le=10)
+    baseline_subgroups: int = Field(ge=1)
+    xbar_center: FiniteFloat
+    xbar_ucl: FiniteFloat
+    xbar_lcl: FiniteFloat
+    range_center: FiniteFloat = Field(ge=0)
+    range_ucl: FiniteFloat = Field(ge=0)
+    range_lcl: FiniteFloat = Field(ge=0)
+    last_xbar: FiniteFloat | None = Field(description="Latest subgroup mean judged; null before.")
+    last_tests: list[Annotated[int, Field(ge=1, le=8)]] = Field(
+        max_length=8,
+        description="Run-rule tests (Nelson 1984, numbered 1-8) that fired at the latest point.",
+    )
+    drift_alarm: bool = Field(description="A trend_drift alarm for this chart is raised.")
+
+
 class QualityStats(OutboundModel):
     """Retained running statistics of recent results for one program on one wrench.
 
-    Means and standard deviations cover the OK and NOK results in the window; null until the
-    window holds at least two results.
+    Means and standard deviations cover the OK and NOK results in the window that measured a
+    completed rundown (aborted, timed-out, link-lost and faulted rundowns count in ``count``
+    and ``nok_count`` but not in the figures); null until at least two such results exist.
+    Capability and chart fields are null until they can be computed (chart: after the
+    baseline subgroups). They were added before any release published this payload, so the
+    schema version stays 1 (see MQTT.md, Versioning).
     """
 
     schema_version: Literal["1"] = "1"
@@ -481,6 +522,10 @@ class QualityStats(OutboundModel):
     first_at: UtcDatetime | None
     last_at: UtcDatetime | None
     at: UtcDatetime
+    final_torque_capability: CapabilityIndices | None = None
+    final_angle_capability: CapabilityIndices | None = None
+    final_torque_chart_nm: ControlChartLimits | None = None
+    final_angle_chart_deg: ControlChartLimits | None = None
 
     @model_validator(mode="after")
     def _consistent(self) -> Self:
