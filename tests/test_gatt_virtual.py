@@ -535,3 +535,24 @@ async def test_a_name_that_cannot_be_advertised_is_refused(name: str) -> None:
     async with VirtualAir() as air:
         with pytest.raises(PeripheralError, match="printable ASCII"):
             await air.add_wrench(StickSource(), name=name)
+
+
+@pytest.mark.parametrize(("name", "ad_type"), [("W-17", 0x09), ("station-7-wrench-2", 0x08)])
+async def test_advertising_data_layout(name: str, ad_type: int) -> None:
+    import uuid
+
+    async with VirtualAir() as air:
+        data = (await air.add_wrench(StickSource(), name=name)).advertising_data()
+    # Core Supplement Part A: AD structures are length, type, data; legacy advertising
+    # data is at most 31 bytes (Core Vol 6 Part B 2.3.1.1). Flags 0x01 = LE General
+    # Discoverable (0x02) | BR/EDR Not Supported (0x04); 0x07 = complete list of 128-bit
+    # UUIDs, little-endian; 0x09 complete / 0x08 shortened local name.
+    assert len(data) <= 31
+    service_le = uuid.UUID(SERVICE_UUID).bytes[::-1]
+    name_part = name.encode()[:8]
+    assert data == (
+        bytes([2, 0x01, 0x06, 17, 0x07])
+        + service_le
+        + bytes([len(name_part) + 1, ad_type])
+        + name_part
+    )

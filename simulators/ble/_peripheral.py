@@ -66,6 +66,8 @@ ADVERTISING_INTERVAL_MS = 20.0
 # Legacy advertising data holds 31 bytes: flags (3) + one 128-bit UUID (18) leave 10, so a
 # local name longer than 8 bytes is advertised as a shortened name (Core Supplement 1.2).
 _ADV_NAME_ROOM = 8
+# A scan response holds the full name when it fits: 31 bytes minus a 2-byte AD header.
+_SCAN_RESPONSE_NAME_ROOM = 29
 # After this much lag (a stalled loop, a paused process) the pacing schedule restarts
 # rather than bursting the backlog; 0.25 s is ~10 frames at 1 kHz, common practice
 # for soft real-time pacing, no source.
@@ -320,7 +322,7 @@ class WrenchPeripheral:
             scan_response_data=bytes(
                 AdvertisingData([(AdvertisingData.COMPLETE_LOCAL_NAME, self.name.encode())])
             )
-            if len(self.name) <= 29
+            if len(self.name) <= _SCAN_RESPONSE_NAME_ROOM
             else b"",
             advertising_interval_min=self.advertising_interval_ms,
             advertising_interval_max=self.advertising_interval_ms,
