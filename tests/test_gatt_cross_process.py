@@ -205,6 +205,7 @@ async def test_a_vanished_wrench_process_is_reported_as_link_loss() -> None:
         (("--hci", "tcp-server:127.0.0.1"), "expected tcp-server:HOST:PORT"),
         (("--hci", "carrier-pigeon:1"), "unknown transport scheme"),
         (("--name", "x" * 30), "at most 29"),
+        (("--serial", "S" * 17), "--serial must be 1..16"),
     ],
 )
 async def test_bad_options_exit_2_with_one_line(args: tuple[str, ...], message: str) -> None:

@@ -60,6 +60,8 @@ logger = logging.getLogger(__name__)
 # Longest name that still fits a scan response next to nothing else (31 − 2 bytes, Core
 # Supplement 1.2); longer names would be cut everywhere a central shows them.
 MAX_NAME_LENGTH = 29
+# The info characteristic's serial field is 16 ASCII bytes (protocol/PROFILE.md).
+_SERIAL_LENGTH = 16
 # SET_RATE range of protocol/PROFILE.md.
 MIN_RATE_HZ, MAX_RATE_HZ = 250, 4000
 
@@ -91,6 +93,14 @@ class StandaloneWrench:
             )
         if self.duration_s is not None and not self.duration_s > 0:
             raise StandaloneError(f"--duration must be > 0 s, got {self.duration_s}")
+        if self.serial is not None and not (
+            0 < len(self.serial) <= _SERIAL_LENGTH
+            and self.serial.isascii()
+            and self.serial.isprintable()
+        ):
+            raise StandaloneError(
+                f"--serial must be 1..{_SERIAL_LENGTH} printable ASCII characters"
+            )
         if self.seed < 0:
             raise StandaloneError(f"--seed must be ≥ 0, got {self.seed}")
         if self.hci.startswith("tcp-server:"):
