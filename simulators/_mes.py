@@ -126,8 +126,9 @@ class MesStandIn:
     """An MES for one station: ``async with MesStandIn(host, port, prefix) as mes``.
 
     ``protocol`` is ``"5"``, ``"3.1.1"`` or ``"auto"`` (MQTT 5, falling back to 3.1.1 when the
-    broker refuses it). ``on_result`` and ``on_status`` are called in the reader task for every
-    new result and every status message (for a live display); they must not block.
+    broker refuses it). ``on_result``, ``on_status`` and ``on_live`` are called in the reader
+    task for every new result, status message and live event (for a live display; live
+    events are subscribed to only when ``on_live`` is given); they must not block.
     Raises ``MesError`` on entry when the broker cannot be reached.
     """
 
@@ -141,6 +142,7 @@ class MesStandIn:
         client_id: str | None = None,
         on_result: Callable[[ReceivedResult], None] | None = None,
         on_status: Callable[[str, dict[str, Any]], None] | None = None,
+        on_live: Callable[[str, dict[str, Any]], None] | None = None,
     ) -> None:
         self.host = host
         self.port = port
@@ -152,6 +154,7 @@ class MesStandIn:
         self.level: _Level | None = None
         self._on_result = on_result
         self._on_status = on_status
+        self._on_live = on_live
         self._schema = json_schemas()["RundownResult"]
         self._validator: Any = None
         self._client: aiomqtt.Client | None = None
@@ -205,6 +208,9 @@ class MesStandIn:
             self.topics.reply_default(),
         ):
             await client.subscribe(topic, qos=1)
+        if self._on_live is not None:
+            # Live events are QoS 0 by contract (MQTT.md): display only, may be lost.
+            await client.subscribe(f"{self.prefix}/wrench/+/live", qos=0)
         self._reader = asyncio.create_task(self._read(client), name="clampd.mes-standin")
         return self
 
@@ -375,6 +381,8 @@ class MesStandIn:
                 await self._take_result(raw)
             elif topic in (self.reply_topic, self.topics.reply_default()):
                 self._take_reply(raw, message.properties)
+            elif topic.endswith("/live"):
+                self._take_live(topic, raw)
             else:
                 self._take_status(topic, raw)
 
@@ -432,6 +440,16 @@ class MesStandIn:
         self.stray_replies.append(reply)
         if len(self.stray_replies) > _BACKLOG:
             del self.stray_replies[0]
+
+    def _take_live(self, topic: str, raw: bytes) -> None:
+        if self._on_live is None:
+            return
+        try:
+            event = json.loads(raw)
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            return
+        if isinstance(event, dict):
+            self._on_live(topic, event)
 
     def _take_status(self, topic: str, raw: bytes) -> None:
         try:
