@@ -376,7 +376,7 @@ def test_timeout_by_samples_and_by_tick() -> None:
     p = prog(strategy="torque", target_torque=40.0, timeout="0.1 s")
     events = Engine(p).feed(t, T, r)
     res = finished(events)[0]
-    assert set(res.reasons) == {Reason.TIMEOUT, Reason.SNUG_NOT_REACHED}
+    assert set(res.reasons) == {Reason.TIMEOUT, Reason.SNUG_NOT_FOUND}
     last_active = int(np.flatnonzero(T >= 1.0)[-1])
     assert res.end_index == int(np.flatnonzero(t - t[last_active] > 0.1 + 1e-12)[0])
     # by tick: no samples after the torque falls

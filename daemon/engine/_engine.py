@@ -928,7 +928,7 @@ class Engine:
         final_th = float(th[pk])
         reasons = list(R.reasons)
         if R.snug is None or R.snug > e:
-            reasons.append(Reason.SNUG_NOT_REACHED)
+            reasons.append(Reason.SNUG_NOT_FOUND)
             snug = None
         else:
             snug = SnugPoint(

@@ -64,7 +64,7 @@ class Reason(enum.StrEnum):
     ABORTED = "aborted"
     TIMEOUT = "timeout"
     YIELD_NOT_FOUND = "yield_not_found"
-    SNUG_NOT_REACHED = "snug_not_reached"
+    SNUG_NOT_FOUND = "snug_not_found"
     ENGINE_ERROR = "engine_error"
 
 
