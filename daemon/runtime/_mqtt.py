@@ -330,6 +330,7 @@ class MqttSession:
         self._live_wake = asyncio.Event()
         self._limiter_ready: collections.deque[LiveEvent] = collections.deque()
         self._stack: contextlib.AsyncExitStack | None = None
+        self._closing = False
         self._tasks: list[asyncio.Task[None]] = []
 
     # -- lifecycle --------------------------------------------------------------------
@@ -357,6 +358,7 @@ class MqttSession:
         with contextlib.suppress(MqttSessionError):
             offline = StationStatus.offline(self.station_id, _utcnow())
             await self._publish_route(offline)
+        self._closing = True
         for task in self._tasks:
             task.cancel()
         stack, self._stack = self._stack, None
@@ -603,7 +605,7 @@ class MqttSession:
         self._lost.set()
         self.state.stats.live_dropped += self._limiter.clear() + len(self._limiter_ready)
         self._limiter_ready.clear()
-        if was_online:
+        if was_online and not self._closing:
             self.state.stats.connection_losses += 1
 
     def _enqueue(self, message: aiomqtt.Message) -> None:
