@@ -94,7 +94,7 @@ class Sinks:
     live = 0
     statuses = 0
 
-    def offer(self, wrench_id: str, event: LiveEventPayload) -> None:
+    def publish_live(self, event: LiveEventPayload) -> None:
         self.live += 1
 
     def offer_status(self, status: WrenchStatus) -> None:

@@ -125,8 +125,8 @@ class Sinks:
     live: list[tuple[str, LiveEventPayload]] = dataclasses.field(default_factory=list)
     statuses: list[WrenchStatus] = dataclasses.field(default_factory=list)
 
-    def offer(self, wrench_id: str, event: LiveEventPayload) -> None:
-        self.live.append((wrench_id, event))
+    def publish_live(self, event: LiveEventPayload) -> None:
+        self.live.append((event.wrench_id, event))
 
     def offer_status(self, status: WrenchStatus) -> None:
         self.statuses.append(status)

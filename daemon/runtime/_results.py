@@ -63,21 +63,9 @@ __all__ = [
     "safe_serial",
 ]
 
-# Engine reason → published reason. Names differ only where the contract chose other words.
-REASONS: Final[dict[engine.Reason, Reason]] = {
-    engine.Reason.TORQUE_LOW: Reason.TORQUE_LOW,
-    engine.Reason.TORQUE_HIGH: Reason.TORQUE_HIGH,
-    engine.Reason.ANGLE_LOW: Reason.ANGLE_LOW,
-    engine.Reason.ANGLE_HIGH: Reason.ANGLE_HIGH,
-    engine.Reason.OVER_TORQUE: Reason.OVER_TORQUE,
-    engine.Reason.DATA_GAP: Reason.DATA_GAP,
-    engine.Reason.LINK_LOST: Reason.LINK_LOST,
-    engine.Reason.ABORTED: Reason.ABORTED,
-    engine.Reason.TIMEOUT: Reason.TIMEOUT,
-    engine.Reason.YIELD_NOT_FOUND: Reason.YIELD_NOT_FOUND,
-    engine.Reason.SNUG_NOT_REACHED: Reason.SNUG_NOT_FOUND,
-    engine.Reason.ENGINE_ERROR: Reason.ENGINE_ERROR,
-}
+# Engine reason → published reason: the engine uses the contract's words, so they map by
+# value; a reason the contract lacks fails here, at import, not in a payload at run time.
+REASONS: Final[dict[engine.Reason, Reason]] = {r: Reason(r.value) for r in engine.Reason}
 
 STRATEGIES: Final[dict[engine.Strategy, Strategy]] = {
     engine.Strategy.TORQUE: Strategy.TORQUE,

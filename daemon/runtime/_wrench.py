@@ -194,10 +194,10 @@ class StationPort(Protocol):
 
 
 class LiveSink(Protocol):
-    """Live events (QoS 0): ``offer`` never blocks and may drop."""
+    """Live events (QoS 0): never blocks and may drop. ``MqttSession`` provides it."""
 
-    def offer(self, wrench_id: str, event: LiveEventPayload) -> None:
-        """Hand over one live event."""
+    def publish_live(self, event: LiveEventPayload) -> None:
+        """Hand over one live event (it names its wrench)."""
         ...
 
 
@@ -810,7 +810,7 @@ class WrenchWorker:
         queue.put_nowait(data)
 
     def _offer(self, event: LiveEventPayload) -> None:
-        self._live.offer(self.wrench_id, event)
+        self._live.publish_live(event)
         self.stats.live_offered += 1
 
     def _progress(self, host_t_s: float, last_t: float) -> None:
