@@ -516,3 +516,21 @@ def test_settings_are_validated() -> None:
         EngineSettings(resume_fraction=1.5)
     with pytest.raises(EngineUsageError, match="finite"):
         EngineSettings(reaction_time_s=float("inf"))
+
+
+def test_events_on_one_sample_come_in_causal_order() -> None:
+    """A single sample that reaches snug and the target: snug first, then the cues (late,
+    predicted = actual), then the stop."""
+    p = prog(strategy="torque", target_torque=20.0)
+    eng = Engine(p)
+    events = eng.feed([0.0, 0.001, 0.002, 0.003], [0.0, 2.0, 25.0, 0.0], [0.0, 10.0, 10.0, -5.0])
+    names = [type(e).__name__ for e in events]
+    assert names == [
+        "RundownStarted",
+        "SnugReached",
+        "CueFired",
+        "CueFired",
+        "StopReached",
+        "RundownFinished",
+    ]
+    assert [e.index for e in events if isinstance(e, SnugReached | StopReached)] == [2, 2]

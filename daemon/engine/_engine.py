@@ -696,6 +696,8 @@ class Engine:
                     K, what = k, name
 
             # Candidates in priority order: on a tie the earlier-listed one is handled first.
+            if state is State.RUNDOWN and R.snug is not None and R.snug - n0 >= p:
+                take(R.snug - n0, "snug")
             if state in (State.TIGHTENING, State.HOLDING):
                 if R.snug is not None and gap_possible:
                     g0 = max(p, R.snug - n0 + 1)
@@ -733,8 +735,6 @@ class Engine:
                             take(p + _first(v + rate * P_.h_stop >= spec.target), "cue_stop")
             if not R.over and t_max >= P_.max_torque:
                 take(p + _first(T[p:] >= P_.max_torque), "over")
-            if state is State.RUNDOWN and R.snug is not None and R.snug - n0 >= p:
-                take(R.snug - n0, "snug")
             if state is State.TIGHTENING and spec is not None and spec.kind != _YIELD:
                 # quick refusals: torque never reaches the target in this frame, or the angle
                 # (non-decreasing) has not reached it by the frame's last sample
