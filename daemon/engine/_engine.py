@@ -221,6 +221,8 @@ def _first(mask: BoolArray) -> int:
 
 
 def _as_array(x: ArrayLike, name: str) -> FloatArray:
+    if type(x) is np.ndarray and x.dtype == np.float64 and x.ndim == 1:
+        return x  # the runtime's decoded frames: nothing to convert
     try:
         a = np.asarray(x, dtype=np.float64)
     except (TypeError, ValueError) as exc:
@@ -636,7 +638,9 @@ class Engine:
         den -= sx * sx
         num = n * sxy
         num -= sx * sy
-        valid = R.turn[a:b] & (th >= P_.window) & (n >= _MIN_FIT_POINTS) & (den > 0.0)
+        valid = R.turn[a:b] & (n >= _MIN_FIT_POINTS) & (den > 0.0)
+        if th[0] < P_.window:  # (θ never decreases: past the window at the start, past it all)
+            valid &= th >= P_.window
         seed = np.empty(m - p + 1)
         seed[0] = R.slope_max
         slope = seed[1:]
