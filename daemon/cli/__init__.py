@@ -34,6 +34,10 @@ _COMMANDS: dict[str, tuple[str, str]] = {
     "check-config": ("clampd.daemon.cli._check_config", "validate a station config file"),
     "results": ("clampd.daemon.cli._results", "list and show results from the journal"),
     "plot": ("clampd.daemon.cli._plot", "draw a result's torque-angle curve to a PNG"),
+    "stats": (
+        "clampd.daemon.cli._stats",
+        "capability, control charts and drift alarms from the journal",
+    ),
 }
 
 
