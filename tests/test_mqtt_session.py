@@ -463,3 +463,20 @@ def test_session_module_is_the_only_aiomqtt_importer() -> None:
         if "import aiomqtt" in p.read_text() or "from aiomqtt" in p.read_text()
     )
     assert users == [os.path.join("runtime", "_mqtt.py")]
+
+
+async def test_no_blocking_call_in_the_event_loop(
+    broker: LocalBroker, topic_prefix: str, blockbuster: object
+) -> None:
+    """Connect, announce, publish, receive a command and a live event with blockbuster
+    watching clampd's frames: any blocking file, socket or sleep call in the loop fails."""
+    topics = Topics(topic_prefix)
+    async with _session(broker, topic_prefix) as session:
+        await asyncio.wait_for(session.wait_online(), 10)
+        await session.publish(f"{topic_prefix}/result", b'{"n": 1}', qos=1)
+        session.publish_live(_progress("w1", new_uuid7(), 0.0))
+        async with aiomqtt.Client(broker.host, broker.port) as mes:
+            await mes.publish(topics.command(CommandName.PING), b"{}", qos=1)
+        cmd = await _next_command(session)
+    assert cmd.payload == b"{}"
+    assert session.state.stats.published >= 2  # online status and the result
