@@ -13,7 +13,12 @@ engine, SQLite outbox); only the radio is virtual and delivers at once, so a rea
 connection interval (7.5 ms and up) comes on top of these figures.
 
 Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_cue_latency.py --benchmark-only -s``
-or, for a longer run, ``.venv/bin/python benchmarks/bench_cue_latency.py --seconds 60``.
+or, for a longer run, ``.venv/bin/python benchmarks/bench_cue_latency.py --seconds 120
+[--cross-process] [--switch-interval 0.0005]``. ``--cross-process`` runs the two wrenches in
+processes of their own (``clampd simulate wrench`` over a TCP HCI hub), so this process holds
+only what a station daemon holds; in-process, the wrenches' simulation shares the event loop
+and inflates the figures. The result mapping runs in a thread; CPython hands the GIL back to
+the loop only every switch interval (5 ms by default), which shows in the tail.
 """
 
 from __future__ import annotations
@@ -23,13 +28,16 @@ import asyncio
 import contextlib
 import dataclasses
 import itertools
+import os
 import random
+import sys
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pytest
 
 from clampd.daemon.engine import program_from_mapping
 from clampd.daemon.runtime import (
@@ -134,11 +142,13 @@ class Figures:
     hwm_kb: int
     rundowns: int
     frames: int
+    load_1min: float
 
     def lines(self) -> str:
         return (
             f"{self.seconds:.0f} s, 2 wrenches at 1 kHz: {self.frames} frames, "
-            f"{self.rundowns} rundowns\n"
+            f"{self.rundowns} rundowns; load average {self.load_1min:.1f} "
+            f"on {os.cpu_count()} CPUs\n"
             f"cue call latency over {self.cues} cues: p50 {self.p50_ms:.2f} ms, "
             f"p99 {self.p99_ms:.2f} ms, max {self.max_ms:.2f} ms\n"
             f"stop cues only ({self.stop_cues}): p99 {self.stop_p99_ms:.2f} ms\n"
@@ -160,27 +170,21 @@ def _joints(rng: np.random.Generator) -> Iterator[JointModel]:
         yield JointModel.sample(rng, population)
 
 
-async def measure(seconds: float, workdir: Path) -> Figures:
-    """Two wrenches tighten joint after joint for ``seconds``; return the figures."""
+async def _run_workers(
+    addresses: list[str], bleak_kwargs: dict[str, Any], seconds: float, workdir: Path
+) -> Figures:
+    """One worker per address for ``seconds``; every wrench tightens joint after joint."""
     station, sinks = Station(), Sinks()
     workers: list[WrenchWorker] = []
     players: list[StopRecorder] = []
-    async with VirtualAir() as air, AsyncOutbox(workdir / "bench.sqlite3") as outbox:
+    async with AsyncOutbox(workdir / "bench.sqlite3") as outbox:
         sink = OutboxResultSink(outbox, Topics("bench/line/st-1"))
-        for n, wid in enumerate(("w-a", "w-b")):
-            rng = np.random.default_rng(100 + n)
-            operator = OperatorParams(steady_rate_dps=30.0, part_pause_s=(0.3, 0.5))
-            bench = Bench(_joints(rng), operator, rng)
-            sensor = VirtualWrenchSensor(SensorParams(serial=f"BENCH-{n}"), rng, bench)
-            wrench = await air.add_wrench(sensor, name=f"W-{n}")
+        for n, (wid, address) in enumerate(zip(("w-a", "w-b"), addresses, strict=True)):
             config = WrenchConfig.model_validate(
-                {"id": wid, "address": wrench.address, "torque_max": "100 N*m"}
+                {"id": wid, "address": address, "torque_max": "100 N*m"}
             )
             link = BleakWrenchLink(
-                config.address,
-                wrench_id=wid,
-                allowed=[config.address],
-                bleak_kwargs=air.bleak_kwargs(),
+                config.address, wrench_id=wid, allowed=[config.address], bleak_kwargs=bleak_kwargs
             )
             player = StopRecorder()
             worker = WrenchWorker(
@@ -227,27 +231,99 @@ async def measure(seconds: float, workdir: Path) -> Figures:
         hwm_kb=_proc_status_kb("VmHWM"),
         rundowns=sum(w.stats.rundowns for w in workers),
         frames=sum(w.stats.frames for w in workers),
+        load_1min=os.getloadavg()[0],
     )
 
 
-def test_cue_latency_and_memory_two_wrenches(benchmark: Any, tmp_path: Path) -> None:
+async def measure(seconds: float, workdir: Path) -> Figures:
+    """Two in-process virtual wrenches (their simulation shares this event loop)."""
+    async with VirtualAir() as air:
+        addresses = []
+        for n in range(2):
+            rng = np.random.default_rng(100 + n)
+            operator = OperatorParams(steady_rate_dps=30.0, part_pause_s=(0.3, 0.5))
+            bench = Bench(_joints(rng), operator, rng)
+            sensor = VirtualWrenchSensor(SensorParams(serial=f"BENCH-{n}"), rng, bench)
+            addresses.append((await air.add_wrench(sensor, name=f"W-{n}")).address)
+        return await _run_workers(addresses, air.bleak_kwargs(), seconds, workdir)
+
+
+async def _spawn_wrench(*args: str) -> tuple[asyncio.subprocess.Process, dict[str, str]]:
+    proc = await asyncio.create_subprocess_exec(
+        sys.executable,
+        "-m",
+        "clampd.daemon.cli",
+        "simulate",
+        "wrench",
+        *args,
+        stdout=asyncio.subprocess.PIPE,
+    )
+    assert proc.stdout is not None
+    async with asyncio.timeout(30):
+        while True:
+            line = (await proc.stdout.readline()).decode()
+            if not line:
+                raise RuntimeError(f"simulated wrench exited: {args}")
+            if line.startswith("ready "):
+                fields = dict(kv.split("=", 1) for kv in line.split()[1:])
+                return proc, fields
+
+
+async def measure_cross_process(seconds: float, workdir: Path) -> Figures:
+    """Two virtual wrenches in processes of their own (``clampd simulate wrench``), joined
+    over a TCP HCI hub: this process holds only what the daemon holds (bleak, the workers)."""
+    from clampd.simulators.ble import open_central
+
+    first, ready_a = await _spawn_wrench("--hci", "tcp-server:127.0.0.1:0", "--name", "W-A")
+    second, ready_b = await _spawn_wrench("--hci", ready_a["hci"], "--name", "W-B", "--seed", "2")
+    try:
+        async with open_central(ready_a["hci"]) as central:
+            return await _run_workers(
+                [ready_a["address"], ready_b["address"]],
+                central.bleak_kwargs(),
+                seconds,
+                workdir,
+            )
+    finally:
+        for proc in (second, first):
+            proc.terminate()
+            await proc.wait()
+
+
+@pytest.mark.parametrize("mode", ["in_process", "cross_process"])
+def test_cue_latency_and_memory_two_wrenches(benchmark: Any, tmp_path: Path, mode: str) -> None:
     """One round of 30 s: the figures go to extra_info and stdout (use ``-s``)."""
+    run = measure if mode == "in_process" else measure_cross_process
     figures: list[Figures] = []
     benchmark.pedantic(
-        lambda: figures.append(asyncio.run(measure(30.0, tmp_path))), rounds=1, iterations=1
+        lambda: figures.append(asyncio.run(run(30.0, tmp_path))), rounds=1, iterations=1
     )
     (fig,) = figures
     benchmark.extra_info.update(dataclasses.asdict(fig))
-    print("\n" + fig.lines())
+    print(f"\n[{mode}] " + fig.lines())
     assert fig.cues > 0  # the run produced cues to measure
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seconds", type=float, default=60.0)
+    parser.add_argument(
+        "--cross-process",
+        action="store_true",
+        help="wrenches in their own processes (closest to a station); default in-process",
+    )
+    parser.add_argument(
+        "--switch-interval",
+        type=float,
+        default=None,
+        help="sys.setswitchinterval for this run, s (CPython default 0.005)",
+    )
     args = parser.parse_args()
+    if args.switch_interval is not None:
+        sys.setswitchinterval(args.switch_interval)
+    run = measure_cross_process if args.cross_process else measure
     with tempfile.TemporaryDirectory() as workdir:
-        print(asyncio.run(measure(args.seconds, Path(workdir))).lines())
+        print(asyncio.run(run(args.seconds, Path(workdir))).lines())
 
 
 if __name__ == "__main__":
