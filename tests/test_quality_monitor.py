@@ -110,6 +110,12 @@ def test_bad_values_and_settings_are_typed_errors() -> None:
     with pytest.raises(ChartError, match="finite"):
         mon.add(math.nan)
     assert mon._open == [1.0]  # nothing lost, nothing half-added
+    wide = ChartMonitor(MonitorSettings(subgroup_size=2))
+    wide.add(1e308)
+    with pytest.raises(ChartError, match="too far apart"):
+        wide.add(-1e308)
+    assert wide._open == [1e308]
+    assert wide.add(1e308 - 1e292) is not None  # the subgroup still completes
     with pytest.raises(ChartError):
         MonitorSettings(subgroup_size=11)
     with pytest.raises(ChartError):

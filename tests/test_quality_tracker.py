@@ -21,10 +21,13 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from jsonschema import Draft202012Validator
 
 from clampd.daemon.quality import (
     GroupKey,
+    MonitorSettings,
     QualityInputError,
     QualityTracker,
     TrackerSettings,
@@ -284,3 +287,39 @@ def test_the_quality_package_is_pure() -> None:
                 names = [node.module]
             for name in names:
                 assert name.split(".")[0] in allowed, (path.name, name)
+
+
+finite = st.floats(allow_nan=False, allow_infinity=False)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    rows=st.lists(
+        st.tuples(
+            finite,
+            st.none() | finite,
+            st.sampled_from([StopTrigger.ANGLE_REACHED, StopTrigger.ABORTED]),
+        ),
+        min_size=1,
+        max_size=40,
+    )
+)
+def test_any_valid_results_give_schema_valid_payloads(
+    rows: list[tuple[float, float | None, StopTrigger]],
+) -> None:
+    # Any value the result model accepts (down to subnormals, up to 1e308) must give
+    # payloads that validate against the exported schema, never an exception.
+    tracker = QualityTracker(TrackerSettings(window=10))
+    tracker_settings_small = QualityTracker(
+        TrackerSettings(window=10, monitor=MonitorSettings(subgroup_size=2, baseline_subgroups=2))
+    )
+    for i, (torque, angle, stop) in enumerate(rows):
+        r = make_result(i, torque, angle, stop=stop)
+        for t in (tracker, tracker_settings_small):
+            out = t.add(r)
+            for payload in out:
+                validate(payload)
+            stats = out[0]
+            assert isinstance(stats, QualityStats)
+            assert stats.count == min(10, i + 1)
+            assert stats.ok_count + stats.nok_count == stats.count

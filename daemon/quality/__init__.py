@@ -35,6 +35,7 @@ from clampd.daemon.quality._monitor import (
 )
 from clampd.daemon.quality._rules import RunTest, fired_at, scan
 from clampd.daemon.quality._tracker import (
+    MAX_MAGNITUDE,
     NOT_MEASURED,
     GroupKey,
     GroupSnapshot,
@@ -46,6 +47,7 @@ from clampd.daemon.quality._tracker import (
 
 __all__ = [
     "DEFAULT_MONITOR",
+    "MAX_MAGNITUDE",
     "NOT_MEASURED",
     "SHEWHART",
     "Capability",

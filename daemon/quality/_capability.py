@@ -70,16 +70,18 @@ def capability(*, mean: float, sigma: float, lsl: float | None, usl: float | Non
     if sigma == 0:
         return Capability(c=None, ck=None)
     c = None if lsl is None or usl is None else (usl - lsl) / (6.0 * sigma)
-    sides = [
-        x
-        for x in (
-            (usl - mean) if usl is not None else None,
-            (mean - lsl) if lsl is not None else None,
-        )
-        if x is not None
-    ]
+    sides: list[float] = []
+    if usl is not None:
+        sides.append(usl - mean)
+    if lsl is not None:
+        sides.append(mean - lsl)
     ck = min(sides) / (3.0 * sigma) if sides else None
-    return Capability(c=c, ck=ck)
+    # A σ near the smallest float (e.g. two readings one ulp apart) overflows: undefined too.
+    return Capability(c=_finite_or_none(c), ck=_finite_or_none(ck))
+
+
+def _finite_or_none(value: float | None) -> float | None:
+    return value if value is not None and math.isfinite(value) else None
 
 
 def sample_mean_std(values: Sequence[float]) -> tuple[float, float]:
@@ -93,6 +95,11 @@ def sample_mean_std(values: Sequence[float]) -> tuple[float, float]:
         raise CapabilityError(f"need at least two values for a standard deviation, got {n}")
     for v in values:
         _finite("value", v)
-    mean = math.fsum(values) / n
-    var = math.fsum((v - mean) ** 2 for v in values) / (n - 1)
+    try:
+        mean = math.fsum(values) / n
+        var = math.fsum((v - mean) ** 2 for v in values) / (n - 1)
+    except OverflowError:
+        raise CapabilityError("values too large for a finite mean and variance") from None
+    if not (math.isfinite(mean) and math.isfinite(var)):
+        raise CapabilityError("values too large for a finite mean and variance")
     return mean, math.sqrt(var)

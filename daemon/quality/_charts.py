@@ -132,7 +132,14 @@ def subgroup_stats(subgroup: Sequence[float]) -> tuple[float, float]:
     shewhart(len(subgroup))
     if not all(math.isfinite(v) for v in subgroup):
         raise ChartError("subgroup values must be finite")
-    return math.fsum(subgroup) / len(subgroup), max(subgroup) - min(subgroup)
+    try:
+        mean = math.fsum(subgroup) / len(subgroup)
+    except OverflowError:
+        raise ChartError("subgroup values too large for a finite mean") from None
+    rng = max(subgroup) - min(subgroup)
+    if not math.isfinite(rng):
+        raise ChartError("subgroup values too far apart for a finite range")
+    return mean, rng
 
 
 def xbar_r_limits(subgroups: Sequence[Sequence[float]]) -> ChartLimits:

@@ -112,11 +112,12 @@ class ChartMonitor:
         """
         if not math.isfinite(value):
             raise ChartError(f"chart values must be finite, got {value}")
-        self._open.append(value)
-        if len(self._open) < self.settings.subgroup_size:
+        group = [*self._open, value]
+        if len(group) < self.settings.subgroup_size:
+            self._open = group
             return None
-        group, self._open = self._open, []
-        xbar, rng = subgroup_stats(group)
+        xbar, rng = subgroup_stats(group)  # may raise ChartError: then nothing has changed
+        self._open = []
         self._count += 1
         if self.limits is None:
             self._baseline.append(group)

@@ -23,7 +23,7 @@ Which results are measurements: rundowns that ended by ``aborted``, ``timed_out`
 ``link_lost`` or ``fault`` did not complete a tightening; they count in ``count`` and
 ``nok_count`` but not in means, capability or charts (their final torque says how far the
 rundown got, not how the process tightens). A result without a final angle (no snug) counts in
-the torque figures only.
+the torque figures only; a value beyond ``MAX_MAGNITUDE`` is not a measurement either.
 
 A group restarts (window, baseline and alarms) when the program's version or its windows change:
 capability against new limits and a chart of a changed process must not mix with the old. An
@@ -48,7 +48,7 @@ from typing import Literal, NamedTuple
 
 from pydantic import ValidationError
 
-from clampd.daemon.quality._capability import capability, sample_mean_std
+from clampd.daemon.quality._capability import CapabilityError, capability, sample_mean_std
 from clampd.daemon.quality._charts import ChartLimits, shewhart
 from clampd.daemon.quality._monitor import (
     DEFAULT_MONITOR,
@@ -70,6 +70,7 @@ from clampd.protocol import (
 )
 
 __all__ = [
+    "MAX_MAGNITUDE",
     "NOT_MEASURED",
     "GroupKey",
     "GroupSnapshot",
@@ -83,6 +84,10 @@ __all__ = [
 NOT_MEASURED = frozenset(
     {StopTrigger.ABORTED, StopTrigger.TIMED_OUT, StopTrigger.LINK_LOST, StopTrigger.FAULT}
 )
+# A final torque (N·m) or angle (deg) beyond 10^9 is no measurement of any tightening tool
+# (common practice, no source); such a result counts but is not measured, which also keeps
+# every sum of a window far from floating-point overflow.
+MAX_MAGNITUDE = 1e9
 _EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
 _MS = dt.timedelta(milliseconds=1)
 
@@ -219,6 +224,11 @@ def _spec_of(result: RundownResult) -> _Spec:
     )
 
 
+def _measurement(value: float | None) -> float | None:
+    """The value, or None beyond ±MAX_MAGNITUDE (no tool measures that; keeps sums finite)."""
+    return value if value is not None and abs(value) <= MAX_MAGNITUDE else None
+
+
 def _within_sigma(values: list[float], n: int) -> float | None:
     """R̄/d2 over the window's consecutive subgroups of n (a trailing partial one is left out)."""
     groups = [values[i : i + n] for i in range(0, len(values) - n + 1, n)]
@@ -261,8 +271,8 @@ class QualityTracker:
             id=result.id,
             ok=result.status is Judgement.OK,
             finished_at=result.finished_at,
-            torque_nm=result.final_torque_nm if measured else None,
-            angle_deg=result.final_angle_deg if measured else None,
+            torque_nm=_measurement(result.final_torque_nm) if measured else None,
+            angle_deg=_measurement(result.final_angle_deg) if measured else None,
         )
         alarms: list[Alarm] = []
         for key in keys:
@@ -428,14 +438,18 @@ class QualityTracker:
         lsl, usl = limits
         mean = std = cm = cmk = cp = cpk = None
         if len(values) >= 2:
-            mean, std = sample_mean_std(values)
-            if (lsl is None or usl is None or lsl < usl) and (lsl, usl) != (None, None):
-                m = capability(mean=mean, sigma=std, lsl=lsl, usl=usl)
-                cm, cmk = m.c, m.ck
-                sigma_w = _within_sigma(values, chart.settings.subgroup_size)
-                if sigma_w is not None:
-                    p = capability(mean=mean, sigma=sigma_w, lsl=lsl, usl=usl)
-                    cp, cpk = p.c, p.ck
+            try:
+                mean, std = sample_mean_std(values)
+            except CapabilityError:  # only for absurd magnitudes (~1e308): report nothing
+                mean = std = None
+        has_limits = (lsl, usl) != (None, None) and (lsl is None or usl is None or lsl < usl)
+        if mean is not None and std is not None and has_limits:
+            m = capability(mean=mean, sigma=std, lsl=lsl, usl=usl)
+            cm, cmk = m.c, m.ck
+            sigma_w = _within_sigma(values, chart.settings.subgroup_size)
+            if sigma_w is not None and math.isfinite(sigma_w):
+                p = capability(mean=mean, sigma=sigma_w, lsl=lsl, usl=usl)
+                cp, cpk = p.c, p.ck
         baseline = chart.settings.baseline_subgroups
         done = baseline if chart.limits is not None else min(len(chart.points), baseline)
         return QuantitySummary(
@@ -499,8 +513,8 @@ def _indices(q: QuantitySummary) -> CapabilityIndices | None:
 
 def _chart(q: QuantitySummary) -> ControlChartLimits | None:
     lim = q.limits
-    if lim is None:
-        return None
+    if lim is None or not all(math.isfinite(v) for v in dataclasses.astuple(lim)):
+        return None  # limits of absurd magnitudes (~1e308) overflow: no chart to publish
     judged = [p for p in q.points if p.z is not None]
     last = judged[-1] if judged else None
     return ControlChartLimits(
