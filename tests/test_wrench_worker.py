@@ -16,6 +16,7 @@ licensed practice.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import dataclasses
 import datetime as dt
 import json
@@ -35,6 +36,7 @@ from clampd.daemon.runtime import (
     Entry,
     Notification,
     NullCuePlayer,
+    OutboxFullError,
     OutboxResultSink,
     WorkOrder,
     WrenchConfig,
@@ -48,6 +50,7 @@ from clampd.protocol import (
     RundownResult,
     Topics,
     WrenchStatus,
+    new_uuid7,
 )
 from clampd.simulators import (
     Bench,
@@ -199,6 +202,7 @@ class Setup:
     positions: tuple[str, ...] = ("bolt-1", "bolt-2", "bolt-3")
     config: dict[str, Any] = dataclasses.field(default_factory=dict)
     seed: int = 7
+    outbox_cap_bytes: int | None = None
 
 
 @pytest.fixture
@@ -210,7 +214,8 @@ async def rig(request: pytest.FixtureRequest, tmp_path: Path) -> AsyncIterator[R
     ]
     bench = Bench(joints, setup.operator, rng, deflection_deg_per_nm=0.02)
     sensor = VirtualWrenchSensor(SensorParams(serial="SIM-210-A"), rng, bench)
-    async with VirtualAir() as air, AsyncOutbox(tmp_path / "outbox.sqlite3") as outbox:
+    options = {} if setup.outbox_cap_bytes is None else {"size_cap_bytes": setup.outbox_cap_bytes}
+    async with VirtualAir() as air, AsyncOutbox(tmp_path / "outbox.sqlite3", **options) as outbox:
         wrench = await air.add_wrench(
             sensor, name="W-210A", identity=WrenchIdentity(serial="SIM-210-A")
         )
@@ -434,3 +439,32 @@ async def test_abort_request_ends_the_rundown_nok_aborted(rig: Rig) -> None:
     result = payload_of(entry)
     assert result.reasons[0].value == "aborted"
     assert result.stop_trigger.value == "aborted"
+
+
+@pytest.mark.parametrize("rig", [Setup(outbox_cap_bytes=256 * 1024)], indirect=True)
+async def test_a_result_refused_by_a_full_outbox_is_held_and_stored_once_room_is_made(
+    rig: Rig,
+) -> None:
+    # The broker has been away: unsent results fill the outbox up to its cap (real refusals).
+    filler: list[str] = []
+    with contextlib.suppress(OutboxFullError):
+        while True:
+            rid = new_uuid7()
+            await rig.outbox.put(rid, f"{PREFIX}/result", b"x" * 20_000, status="OK")
+            filler.append(rid)
+    assert filler
+    await rig.until(lambda: rig.worker.stats.rundowns >= 1 and rig.worker.unstored_results == 1)
+    await asyncio.sleep(0.2)
+    # Held, not dropped, and the position is not advanced before the result is durable.
+    assert rig.worker.unstored_results == 1
+    assert rig.worker.stats.results_stored == 0
+    assert rig.station.done == []
+    # The flusher gets PUBACKs for the backlog: sent rows may be evicted, the retry fits.
+    for rid in filler:
+        await rig.outbox.mark_sent(rid)
+    await rig.until(lambda: rig.worker.stats.results_stored == 1, timeout_s=10)
+    assert rig.worker.unstored_results == 0
+    stored = [e for e in await rig.outbox.list() if e.wrench == "w-210-a"]
+    assert len(stored) == 1
+    assert payload_of(stored[0]).joint_position == "bolt-1"
+    assert rig.station.done == [("bolt-1", payload_of(stored[0]).status)]
