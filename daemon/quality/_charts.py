@@ -134,8 +134,8 @@ def subgroup_stats(subgroup: Sequence[float]) -> tuple[float, float]:
         raise ChartError("subgroup values must be finite")
     try:
         mean = math.fsum(subgroup) / len(subgroup)
-    except OverflowError:
-        raise ChartError("subgroup values too large for a finite mean") from None
+    except OverflowError:  # the sum passes 1.8e308 on the way; the mean itself cannot
+        mean = math.fsum(v / len(subgroup) for v in subgroup)
     rng = max(subgroup) - min(subgroup)
     if not math.isfinite(rng):
         raise ChartError("subgroup values too far apart for a finite range")
