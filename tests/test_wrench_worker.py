@@ -468,3 +468,25 @@ async def test_a_result_refused_by_a_full_outbox_is_held_and_stored_once_room_is
     assert len(stored) == 1
     assert payload_of(stored[0]).joint_position == "bolt-1"
     assert rig.station.done == [("bolt-1", payload_of(stored[0]).status)]
+
+
+@pytest.mark.parametrize("rig", [Setup(joints=2)], indirect=True)
+async def test_a_program_change_applies_from_the_next_rundown_only(rig: Rig) -> None:
+    await rig.until(lambda: any(isinstance(ev, LiveSnug) for _, ev in rig.sinks.live))
+    # Mid-rundown: the MES selects another program; this rundown keeps the one it started with.
+    rig.station.program = program_from_mapping({**TORQUE_PROGRAM, "id": "cover-m10-rework"})
+    entries = await rig.results(2, timeout_s=40.0)
+    first, second = (payload_of(e) for e in entries)
+    assert first.program.program_id == "cover-m10-torque"
+    assert second.program.program_id == "cover-m10-rework"
+
+
+@pytest.mark.parametrize("rig", [Setup(positions=())], indirect=True)
+async def test_with_nothing_selected_torque_gets_the_locked_cue_and_no_result(
+    rig: Rig, blockbuster: object
+) -> None:
+    await rig.until(lambda: CuePattern.LOCKED in [p for _, p, _ in rig.sensor.cues])
+    assert rig.worker.stats.samples_unassigned > 0
+    assert rig.worker.stats.rundowns == 0
+    assert await rig.outbox.list() == []
+    assert rig.worker.engine is None  # no program, no engine: nothing to judge against
