@@ -11,8 +11,9 @@ lands on the exact sample where its condition first holds:
 
 1. *Accumulate* (state-independent within a rundown): gyro bias removal, which samples turn the
    fastener (ratchet logic below), snug, the angle from snug by the trapezoid rule on the
-   sensor's own timestamps, and running sums (n, Σθ, ΣT, Σθ², ΣθT, ΣT²) of the turning samples
-   after snug, from which any least-squares slope over an angle window is an O(1) difference.
+   sensor's own timestamps, and (when yield is watched) running sums (n, Σθ, ΣT, Σθ², ΣθT) of
+   the turning samples after snug, from which any least-squares slope over an angle window is
+   an O(1) difference.
 2. *Decide*: for the current state, vectorised masks of every condition that can change
    something (snug, a step target, cues, yield, over-torque, data gap, release, timeout) over
    the rest of the frame; the earliest sample wins, its one event is applied (the transition
