@@ -21,6 +21,7 @@ import signal
 import sys
 import textwrap
 from collections.abc import AsyncIterator
+from pathlib import Path
 
 import aiomqtt
 import pytest
@@ -480,3 +481,40 @@ async def test_no_blocking_call_in_the_event_loop(
         cmd = await _next_command(session)
     assert cmd.payload == b"{}"
     assert session.state.stats.published >= 2  # online status and the result
+
+
+async def test_password_file_login_and_refusal(tmp_path: Path, topic_prefix: str) -> None:
+    """mosquitto with a password file: the right password (read from our password_file)
+    connects; a wrong one is refused by CONNACK (MQTT 5.0 §3.2.2.2: 0x86 = 134 Bad User Name
+    or Password, or 0x87 = 135 Not authorized; mosquitto 2.0 answers 135, measured here),
+    kept as the last refusal, never online, and publish says so."""
+    hashed = tmp_path / "broker-passwd"
+    proc = await asyncio.create_subprocess_exec(
+        "mosquitto_passwd", "-b", "-c", str(hashed), "st-120", "deck-line-3"
+    )
+    assert await proc.wait() == 0
+    good = tmp_path / "good.secret"
+    good.write_text("deck-line-3\n")
+    bad = tmp_path / "bad.secret"
+    bad.write_text("deck-line-4\n")
+    (tmp_path / "broker").mkdir()
+    async with LocalBroker(
+        workdir=tmp_path / "broker", extra_config=f"password_file {hashed}\n"
+    ) as broker:
+        ok = _session(broker, topic_prefix, username="st-120", password_file=str(good))
+        async with ok:
+            await asyncio.wait_for(ok.wait_online(), 10)
+            assert ok.protocol == "5"
+        refused = _session(broker, topic_prefix, username="st-120", password_file=str(bad))
+        async with refused:
+            async with asyncio.timeout(10):
+                while refused.state.last_error is None:  # noqa: ASYNC110 -- a value, no event
+                    await asyncio.sleep(0.01)
+            refusal = refused.state.last_refusal
+            assert refusal is not None
+            assert refusal.code in (134, 135)
+            assert refused.state.last_error == str(refusal)
+            assert refused.state.stats.fallbacks == 0  # a refusal of credentials is no reason
+            with pytest.raises(BrokerUnavailable):
+                await refused.publish(f"{topic_prefix}/result", b"{}", qos=1)
+        assert not refused.state.online.is_set()

@@ -171,6 +171,7 @@ class SessionState:
     protocol: ProtocolLevel | None = None
     generation: int = 0
     last_error: str | None = None
+    last_refusal: BrokerRefusedError | None = None  # the broker's last CONNACK refusal
     online: asyncio.Event = dataclasses.field(default_factory=asyncio.Event)
     stats: SessionStats = dataclasses.field(default_factory=SessionStats)
 
@@ -278,6 +279,11 @@ def _command_properties(props: Properties | None) -> CommandProperties:
 def _reason_value(rc: object) -> int | None:
     value = getattr(rc, "value", rc)
     return value if isinstance(value, int) else None
+
+
+def _reason_text(exc: MqttConnectError) -> str:
+    rc = exc.rc
+    return str(rc) if rc is not None and not isinstance(rc, int) else str(exc)
 
 
 def _utcnow() -> dt.datetime:
@@ -532,7 +538,9 @@ class MqttSession:
                 if code in _PROTOCOL_REFUSED and self._may_fall_back(level):
                     self._fall_back(f"refused MQTT 5 (code {code})", final=True)
                     continue
-                self.state.last_error = str(BrokerRefusedError(code or -1, str(exc)))
+                refusal = BrokerRefusedError(code or -1, _reason_text(exc))
+                self.state.last_refusal = refusal
+                self.state.last_error = str(refusal)
                 _log.error("%s", self.state.last_error)
             except aiomqtt.MqttError as exc:
                 self.state.last_error = f"connection to {self._where}: {exc}"
@@ -588,6 +596,7 @@ class MqttSession:
         self.state.stats.connects += 1
         self.state.phase = Phase.ONLINE
         self.state.last_error = None
+        self.state.last_refusal = None
         self.state.online.set()
         _log.info(
             "MQTT %s connected to %s:%s as %r (connection %d)",
