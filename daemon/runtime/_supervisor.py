@@ -50,14 +50,16 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, Final
 
-from clampd.daemon import engine
 from clampd.daemon.runtime._backoff import next_delay
 from clampd.daemon.runtime._ble import BleakWrenchLink, LinkRefusedError
+from clampd.daemon.runtime._commands import CommandHandler
 from clampd.daemon.runtime._config import StationConfig, WrenchConfig
 from clampd.daemon.runtime._cues import CuePlayer, make_player
+from clampd.daemon.runtime._flusher import ResultFlusher
 from clampd.daemon.runtime._mqtt import BrokerUnavailable, MqttSession
-from clampd.daemon.runtime._outbox import AsyncOutbox, Entry
+from clampd.daemon.runtime._outbox import AsyncOutbox
 from clampd.daemon.runtime._results import OutboxResultSink
+from clampd.daemon.runtime._station import StateChange, StationState
 from clampd.daemon.runtime._systemd import SystemdNotifier
 from clampd.daemon.runtime._wrench import (
     LiveEventPayload,
@@ -65,25 +67,7 @@ from clampd.daemon.runtime._wrench import (
     WrenchWorker,
     engine_settings,
 )
-from clampd.protocol import (
-    Abort,
-    Command,
-    CommandError,
-    ErrorCode,
-    Judgement,
-    Lock,
-    Ping,
-    Selection,
-    SelectProgram,
-    StationState,
-    StationStatus,
-    Topics,
-    Unlock,
-    WrenchStatus,
-    error_reply,
-    ok_reply,
-    parse_command,
-)
+from clampd.protocol import Judgement, StationStatus, Topics, WrenchStatus
 
 __all__ = [
     "FINISH_GRACE_S",
@@ -105,8 +89,11 @@ FINISH_GRACE_S: Final = 5.0
 FLUSH_TIMEOUT_S: Final = 10.0
 # Journal pruning: retention is counted in days, so once an hour is plenty (our choice).
 _PRUNE_EVERY_S: Final = 3600.0
-# How often the shutdown path looks whether the rundowns in progress ended.
+# How often the shutdown path looks whether the rundowns in progress ended, and how often the
+# watcher tells the station state that a rundown started: the worker's own idle tick is
+# 0.1 s, so 50 ms adds no noticeable lag to "busy" (our choice).
 _POLL_S: Final = 0.05
+_WATCH_S: Final = 0.05
 
 BleakKwargs = Callable[[WrenchConfig], dict[str, Any]]
 """Per wrench, keyword arguments for ``BleakClient`` (the virtual link's backend in the demo
@@ -182,109 +169,36 @@ class _StatusBoard:
                 await asyncio.sleep(_POLL_S)
 
 
-# -- station state, commands and flushing ---------------------------------------------------
-# The station's own bookkeeping, kept small: what each wrench should do next, lock flags,
-# the published status, the command path and the outbox flusher.
+class _StationPort:
+    """The worker's view of the station state (``StationPort``), and the way back.
 
-
-@dataclasses.dataclass(slots=True)
-class _Selection:
-    program: engine.Program
-    part_id: str
-    positions: list[str]
-    next_index: int = 0
-
-    def next_position(self) -> str | None:
-        return self.positions[self.next_index] if self.next_index < len(self.positions) else None
-
-
-class _Board:
-    """Per wrench: the selection in force and the lock flag. Implements ``StationPort``.
-
-    Policy: the station moves to the next position once a result for the current one is
-    stored, OK or NOK; what happens after a NOK (rework, review) is the MES's decision, which
-    it makes by selecting the positions to redo.
+    ``StationState`` speaks in jobs and joint slots; a worker asks for a ``WorkOrder``. Once a
+    result is stored the worker calls ``position_done``: the rundown is over for the state
+    (so a new selection is no longer refused as busy) and the job's next position is marked.
+    Rundown starts are noticed by the supervisor's watcher (``Station._watch``), because the
+    worker reports none.
     """
 
-    def __init__(self, station_id: str, programs: dict[str, engine.Program], wrenches: list[str]):
-        self.station_id = station_id
-        self.programs = programs
-        self.wrenches = wrenches
-        self.selection: dict[str, _Selection] = {}
-        self.locked: set[str] = set()
-        self._latest: str | None = None  # wrench of the latest selection, shown in the status
+    def __init__(self, state: StationState) -> None:
+        self._state = state
 
-    # StationPort
     def work_order(self, wrench_id: str) -> WorkOrder | None:
-        sel = self.selection.get(wrench_id)
-        position = None if sel is None else sel.next_position()
-        if sel is None or position is None:
+        job = self._state.job_for(wrench_id)
+        position = None if job is None else job.next_position
+        if job is None or position is None:
             return None
-        return WorkOrder(program=sel.program, part_id=sel.part_id, joint_position=position)
+        return WorkOrder(program=job.program, part_id=job.part_id, joint_position=position)
 
     def is_locked(self, wrench_id: str) -> bool:
-        return wrench_id in self.locked
+        return self._state.is_locked(wrench_id)
 
     def position_done(self, wrench_id: str, joint_position: str, status: Judgement) -> None:
-        del status
-        sel = self.selection.get(wrench_id)
-        if sel is not None and sel.next_position() == joint_position:
-            sel.next_index += 1
-
-    # what commands change
-    def select(self, cmd: SelectProgram) -> str:
-        program = self.programs.get(cmd.program_id)
-        if program is None or (
-            cmd.program_version is not None and cmd.program_version != program.version
-        ):
-            raise _Refused(ErrorCode.UNKNOWN_PROGRAM, f"no program {cmd.program_id!r} here")
-        targets = self._targets(cmd.wrench_id)
-        for w in targets:
-            self.selection[w] = _Selection(program, cmd.part_id, list(cmd.joint_positions))
-        self._latest = targets[0]
-        return f"{cmd.program_id} for {cmd.part_id} on {', '.join(targets)}"
-
-    def lock(self, wrench_id: str | None, *, locked: bool) -> str:
-        targets = self._targets(wrench_id)
-        for w in targets:
-            if locked:
-                self.locked.add(w)
-            else:
-                self.locked.discard(w)
-        return f"{'locked' if locked else 'unlocked'} {', '.join(targets)}"
-
-    def _targets(self, wrench_id: str | None) -> list[str]:
-        if wrench_id is None:
-            return list(self.wrenches)
-        if wrench_id not in self.wrenches:
-            raise _Refused(ErrorCode.UNKNOWN_WRENCH, f"no wrench {wrench_id!r} at this station")
-        return [wrench_id]
-
-    def status(self, at: dt.datetime, software_version: str | None) -> StationStatus:
-        sel = None if self._latest is None else self.selection.get(self._latest)
-        return StationStatus(
-            station=self.station_id,
-            state=StationState.ONLINE,
-            software_version=software_version,
-            locked=bool(self.wrenches) and set(self.wrenches) <= self.locked,
-            selection=None
-            if sel is None
-            else Selection(
-                program_id=sel.program.id,
-                program_version=sel.program.version,
-                part_id=sel.part_id,
-                joint_positions=sel.positions,
-                next_position=sel.next_position(),
-            ),
-            at=at,
-        )
-
-
-class _Refused(Exception):  # noqa: N818 -- carries an error code for the reply, like CommandError
-    def __init__(self, code: ErrorCode, text: str) -> None:
-        super().__init__(text)
-        self.code = code
-        self.text = text
+        state = self._state
+        if state.in_rundown(wrench_id):
+            state.rundown_ended(wrench_id)
+        job = state.job_for(wrench_id)
+        if job is not None and job.next_position == joint_position:
+            state.record_result(wrench_id, ok=status is Judgement.OK)
 
 
 @dataclasses.dataclass(slots=True)
@@ -336,12 +250,10 @@ class Station:
         """Results the shutdown flush delivered."""
         self.unsent_at_stop: int | None = None
         """Results left in the outbox after the shutdown flush (None until it ran)."""
-        self.results_sent = 0
-        self.commands_done = 0
-        self.commands_refused = 0
-        self.board = _Board(config.station.id, {}, [])
+        self.state = StationState(config.station.id, {}, {})
+        self.flusher: ResultFlusher | None = None
+        self.commands: CommandHandler | None = None
         self._status_changed = asyncio.Event()
-        self._send_lock = asyncio.Lock()
 
     # -- the whole daemon ----------------------------------------------------------------
 
@@ -399,10 +311,11 @@ class Station:
                     self.notifier.stopping()
                     _log.info("stopping: finishing rundowns in progress")
                     await self._wind_down()
+                    await self._drain()
                     raise _Stopped
             except* _Stopped:
                 pass
-            await self._final_flush(outbox, session)
+            self.unsent_at_stop = await outbox.count_unsent()
             _log.info(
                 "stopped: %d result(s) flushed at stop, %s left in the outbox",
                 self.flushed_at_stop,
@@ -441,103 +354,57 @@ class Station:
             )
             self.slots[wcfg.id] = _WorkerSlot(wcfg, worker)
 
-    # -- station state, commands, flushing ---------------------------------------------------
+    # -- station state, commands, flushing -------------------------------------------------
 
     def _build_state(self) -> None:
         cfg = self.config
-        programs = {p["id"]: engine.program_from_mapping(p) for p in cfg.program}
-        self.board = _Board(cfg.station.id, programs, [w.id for w in cfg.wrench])
+        self.state = StationState.from_tables(
+            cfg.station.id, cfg.program, {w.id: w.torque_max_nm for w in cfg.wrench}
+        )
+        self.state.subscribe(self._on_change)
 
-    def _station_port(self) -> _Board:
-        return self.board
+    def _station_port(self) -> _StationPort:
+        return _StationPort(self.state)
 
     def _station_status(self, at: dt.datetime) -> StationStatus:
-        return self.board.status(at, self.software_version)
+        return self.state.status(at, software_version=self.software_version)
+
+    def _on_change(self, change: StateChange) -> None:
+        """State listener: hand aborts to the worker, republish the status on progress."""
+        if change.kind == "abort" and change.wrench_id is not None:
+            slot = self.slots.get(change.wrench_id)
+            if slot is not None and self.state.take_abort(change.wrench_id) is not None:
+                slot.worker.request_abort()
+        elif change.kind == "joint":
+            # Commands republish the status themselves; a finished joint does not.
+            self._status_changed.set()
 
     def _start_tasks(self, tg: asyncio.TaskGroup, board: _StatusBoard) -> None:
         assert self.session is not None
         assert self.outbox is not None
-        tg.create_task(self._flush(self.outbox, self.session), name="clampd.flusher")
-        tg.create_task(self._commands(self.session), name="clampd.commands")
+        self.flusher = ResultFlusher(
+            self.outbox, self.session, rng=random.Random(self._rng.random())
+        )
+        self.commands = CommandHandler(self.session, self.state, self.topics)
+        tg.create_task(self.flusher.run(), name="clampd.flusher")
+        tg.create_task(self.commands.run(), name="clampd.commands")
         tg.create_task(board.run(), name="clampd.status")
         tg.create_task(self._status_pump(self.session), name="clampd.station-status")
+        for slot in self.slots.values():
+            tg.create_task(self._watch(slot), name=f"clampd[{slot.config.id}].state")
 
-    async def _commands(self, session: MqttSession) -> None:
-        """Every command gets exactly one reply; nothing a command holds can end this loop."""
-        async for incoming in session.commands():
-            now = dt.datetime.now(dt.UTC)
-            station_id = self.config.station.id
-            try:
-                command = parse_command(
-                    self.topics, incoming.topic, incoming.payload, incoming.properties
-                )
-            except CommandError as exc:
-                self.commands_refused += 1
-                _log.warning("command on %s refused: %s", incoming.topic, exc)
-                reply = error_reply(exc, station_id, now)
-                address = exc.reply
-            else:
-                address = command.reply
-                try:
-                    text = self._apply(command)
-                except _Refused as exc:
-                    self.commands_refused += 1
-                    _log.warning("command %s refused: %s", command.name.value, exc.text)
-                    reply = error_reply(
-                        CommandError(exc.code, exc.text, reply=address, command=command.name),
-                        station_id,
-                        now,
-                    )
-                else:
-                    self.commands_done += 1
-                    reply = ok_reply(command, station_id, now, text)
-            try:
-                await session.publish_reply(address, reply.model_dump_json().encode())
-            except BrokerUnavailable as exc:
-                _log.warning("reply to %s lost: %s", address.topic, exc)
-
-    def _apply(self, command: Command) -> str | None:
-        payload = command.payload
-        board = self.board
-        match payload:
-            case SelectProgram():
-                text = board.select(payload)
-            case Lock():
-                text = board.lock(payload.wrench_id, locked=True)
-            case Unlock():
-                text = board.lock(payload.wrench_id, locked=False)
-            case Abort():
-                targets = board._targets(payload.wrench_id)
-                aborted = [w for w in targets if self.slots[w].worker.request_abort()]
-                if not aborted:
-                    raise _Refused(ErrorCode.NOTHING_TO_ABORT, "no rundown in progress")
-                text = f"aborting the rundown on {', '.join(aborted)}"
-            case Ping():
-                return "pong"
-        self._status_changed.set()
-        return text
-
-    async def _flush(self, outbox: AsyncOutbox, session: MqttSession) -> None:
-        """Outbox → broker in append order; ``mark_sent`` only after the PUBACK."""
+    async def _watch(self, slot: _WorkerSlot) -> None:
+        """Tell the station state when a rundown starts (and ends, if no result came)."""
+        wrench_id = slot.config.id
         while True:
-            await session.wait_online()
-            await outbox.wait_pending()
-            try:
-                for entry in await outbox.pending(100):
-                    # Publish and mark as one step that a shutdown lets finish: cancelled
-                    # between the PUBACK and mark_sent, the final flush would send it twice.
-                    await asyncio.shield(self._send(outbox, session, entry))
-            except BrokerUnavailable as exc:
-                _log.info("flusher: %s; resuming after the reconnect", exc)
-                await asyncio.sleep(_POLL_S)
-
-    async def _send(self, outbox: AsyncOutbox, session: MqttSession, entry: Entry) -> None:
-        async with self._send_lock:
-            if (await outbox.get(entry.id) or entry).sent:
-                return  # the shutdown flush took it meanwhile
-            await session.publish(entry.topic, entry.payload, qos=1)
-            await outbox.mark_sent(entry.id)
-            self.results_sent += 1
+            running = slot.worker.in_rundown
+            if running and not self.state.in_rundown(wrench_id):
+                self.state.rundown_started(wrench_id)
+            elif not running and self.state.in_rundown(wrench_id):
+                # Normally ended by position_done once the result is stored; this covers a
+                # result the outbox refused (kept in memory by the worker).
+                self.state.rundown_ended(wrench_id)
+            await asyncio.sleep(_WATCH_S)
 
     async def _status_pump(self, session: MqttSession) -> None:
         while True:
@@ -600,19 +467,19 @@ class Station:
         while any(s.worker.in_rundown for s in self.slots.values()):  # noqa: ASYNC110
             await asyncio.sleep(_POLL_S)
 
-    async def _final_flush(self, outbox: AsyncOutbox, session: MqttSession) -> None:
-        """Deliver what the outbox holds while the broker is reachable, for a bounded time."""
-        sent = 0
-        if session.state.online.is_set():
-            with contextlib.suppress(TimeoutError, BrokerUnavailable):
-                async with asyncio.timeout(self._flush_timeout_s):
-                    while entries := await outbox.pending(100):
-                        for entry in entries:
-                            before = self.results_sent
-                            await self._send(outbox, session, entry)
-                            sent += self.results_sent - before
-        self.flushed_at_stop = sent
-        self.unsent_at_stop = await outbox.count_unsent()
+    async def _drain(self) -> None:
+        """Let the flusher deliver what the outbox holds while the broker is reachable, for
+        a bounded time, before the task group is cancelled: cancelling it between a PUBACK
+        and ``mark_sent`` would send that result again after the next start."""
+        flusher = self.flusher
+        if flusher is None:
+            return
+        before = flusher.sent
+        with contextlib.suppress(TimeoutError):
+            async with asyncio.timeout(self._flush_timeout_s):
+                while (backlog := await flusher.backlog()) > 0:
+                    await flusher.wait_sent(flusher.sent + backlog)
+        self.flushed_at_stop = flusher.sent - before
 
     # -- small tasks -------------------------------------------------------------------------
 
