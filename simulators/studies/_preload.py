@@ -285,16 +285,18 @@ def preload_table(figures: Mapping[str, Any], joints: int, seed: int) -> str:
         "",
         (
             f"{'strategy':<14}{'FM,min kN':>10}{'mean kN':>9}{'max kN':>9}{'αA':>7}"
-            f"{'VDI 2230 αA*':>14}{'past yield':>12}{'NOK':>7}"
+            f"{'αA OK (n)':>13}{'VDI 2230 αA*':>14}{'past yield':>12}{'NOK':>7}{'short':>7}"
         ),
     ]
     for strategy, f in figures.items():
         lo, hi = f["vdi_alpha_a_range"]
         alpha = "—" if f["alpha_a"] is None else f"{f['alpha_a']:.2f}"
+        alpha_ok = "—" if f["alpha_a_ok"] is None else f"{f['alpha_a_ok']:.2f}"
+        alpha_ok += f" ({f['joints_ok']})"
         lines.append(
             f"{strategy:<14}{f['preload_min_n'] / 1000:>10.1f}{f['preload_mean_n'] / 1000:>9.1f}"
-            f"{f['preload_max_n'] / 1000:>9.1f}{alpha:>7}{f'{lo:.1f}–{hi:.1f}':>14}"
-            f"{f['share_past_yield']:>12.1%}{f['share_nok']:>7.1%}"
+            f"{f['preload_max_n'] / 1000:>9.1f}{alpha:>7}{alpha_ok:>13}{f'{lo:.1f}–{hi:.1f}':>14}"
+            f"{f['share_past_yield']:>12.1%}{f['share_nok']:>7.1%}{f['share_stopped_short']:>7.1%}"
         )
     lines += [
         "",
@@ -302,6 +304,7 @@ def preload_table(figures: Mapping[str, Any], joints: int, seed: int) -> str:
             "* VDI 2230 Part 1 Table A8, from memory: torque control with a hand torque wrench"
             " 1.4–2.0 (friction measured … estimated); angle and yield control 1.0–1.2."
         ),
+        "αA OK: over the rundowns the engine judged OK; short: stopped before the target.",
         CAUTION,
     ]
     return "\n".join(lines) + "\n"
