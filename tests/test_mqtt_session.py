@@ -20,6 +20,7 @@ import random
 import signal
 import sys
 import textwrap
+import warnings
 from collections.abc import AsyncIterator
 from pathlib import Path
 
@@ -38,6 +39,7 @@ from clampd.daemon.runtime import (
     LiveLimiter,
     MqttSession,
     PlaintextRemoteError,
+    TlsSetupError,
 )
 from clampd.protocol import (
     CommandName,
@@ -518,3 +520,91 @@ async def test_password_file_login_and_refusal(tmp_path: Path, topic_prefix: str
             with pytest.raises(BrokerUnavailable):
                 await refused.publish(f"{topic_prefix}/result", b"{}", qos=1)
         assert not refused.state.online.is_set()
+
+
+async def _openssl(*args: str) -> None:
+    proc = await asyncio.create_subprocess_exec(
+        "openssl", *args, stdout=asyncio.subprocess.DEVNULL, stderr=asyncio.subprocess.DEVNULL
+    )
+    assert await proc.wait() == 0, f"openssl {args[0]} failed"
+
+
+async def _make_pki(d: Path) -> tuple[Path, Path, Path]:
+    """A throw-away CA and a server certificate for 127.0.0.1 (RFC 5280 §4.2.1.6: an IP
+    address in subjectAltName is what a client checks for an IP host)."""
+    ec = ("-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes")
+    ca, ca_key = d / "ca.pem", d / "ca.key"
+    await _openssl(
+        "req", "-x509", *ec, "-keyout", str(ca_key), "-out", str(ca), "-days", "2",
+        "-subj", "/CN=clampd test CA", "-addext", "basicConstraints=critical,CA:TRUE",
+        "-addext", "keyUsage=critical,keyCertSign,cRLSign",
+    )  # fmt: skip
+    key, csr, cert = d / "server.key", d / "server.csr", d / "server.pem"
+    await _openssl("req", *ec, "-keyout", str(key), "-out", str(csr), "-subj", "/CN=127.0.0.1")
+    ext = d / "server.ext"
+    ext.write_text("subjectAltName=IP:127.0.0.1\n")
+    await _openssl(
+        "x509", "-req", "-in", str(csr), "-CA", str(ca), "-CAkey", str(ca_key),
+        "-CAcreateserial", "-out", str(cert), "-days", "2", "-extfile", str(ext),
+    )  # fmt: skip
+    return ca, cert, key
+
+
+# paho does not close its client socket when the TLS handshake fails during connect; Python
+# reports it when it collects the socket (the fd is freed then). paho's, not ours.
+@pytest.mark.filterwarnings("ignore::pytest.PytestUnraisableExceptionWarning")
+async def test_tls_with_the_configured_ca_and_refusal_without_it(
+    tmp_path: Path, topic_prefix: str
+) -> None:
+    """mqtts:// to a mosquitto TLS listener: verified against ``tls_ca`` it connects; against
+    the system trust store the certificate fails, the session stays offline, and a TLS
+    failure is never mistaken for a protocol refusal (no fallback)."""
+    ca, cert, key = await _make_pki(tmp_path)
+    (tmp_path / "broker").mkdir()
+    extra = f"certfile {cert}\nkeyfile {key}\n"
+    async with LocalBroker(workdir=tmp_path / "broker", extra_config=extra) as broker:
+        url = f"mqtts://127.0.0.1:{broker.port}"
+        topics = Topics(topic_prefix)
+        good = MqttSession(
+            BrokerConfig(url=url, tls_ca=ca),
+            topics,
+            station_id=STATION,
+            client_id="clampd-tls",
+            rng=random.Random(4),
+        )
+        async with good:
+            await asyncio.wait_for(good.wait_online(), 10)
+            assert good.protocol == "5"
+            await good.publish(f"{topic_prefix}/result", b"{}", qos=1)
+        untrusted = MqttSession(
+            BrokerConfig(url=url),
+            topics,
+            station_id=STATION,
+            client_id="clampd-tls-untrusted",
+            rng=random.Random(4),
+            ack_timeout_s=2.0,
+        )
+        async with untrusted:
+            async with asyncio.timeout(10):
+                while untrusted.state.last_error is None:  # noqa: ASYNC110 -- a value
+                    await asyncio.sleep(0.01)
+            assert "CERTIFICATE_VERIFY_FAILED" in untrusted.state.last_error
+            assert untrusted.state.stats.fallbacks == 0
+            assert not untrusted.state.online.is_set()
+    # Collect paho's unclosed socket now, quietly, rather than at some unrelated moment.
+    del good, untrusted
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ResourceWarning)
+        gc.collect()
+
+
+def test_unreadable_tls_files_are_a_typed_error(tmp_path: Path, topic_prefix: str) -> None:
+    cfg = BrokerConfig(url="mqtts://127.0.0.1:8883", tls_ca=tmp_path / "missing-ca.pem")
+    session = MqttSession(cfg, Topics(topic_prefix), station_id=STATION, client_id="c")
+
+    async def enter() -> None:
+        async with session:
+            pass
+
+    with pytest.raises(TlsSetupError, match=r"missing-ca\.pem"):
+        asyncio.run(enter())

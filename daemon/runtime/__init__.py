@@ -60,6 +60,7 @@ from clampd.daemon.runtime._mqtt import (
     MqttSessionError,
     SessionState,
     SessionStats,
+    TlsSetupError,
 )
 from clampd.daemon.runtime._outbox import (
     AsyncOutbox,
@@ -194,6 +195,7 @@ __all__ = [
     "StationState",
     "StationStateError",
     "StatusSink",
+    "TlsSetupError",
     "UnknownProgramError",
     "UnknownWrenchError",
     "WavCuePlayer",

@@ -49,6 +49,7 @@ import datetime as dt
 import enum
 import logging
 import random
+import ssl
 from collections.abc import AsyncIterator, Callable
 from types import TracebackType
 from typing import Literal, Self
@@ -83,6 +84,7 @@ __all__ = [
     "MqttSessionError",
     "SessionState",
     "SessionStats",
+    "TlsSetupError",
 ]
 
 _log = logging.getLogger(__name__)
@@ -119,6 +121,10 @@ class BrokerUnavailable(MqttSessionError):  # noqa: N818 -- name agreed in the r
     """No broker to publish to: not connected, the connection was lost before the PUBACK, or
     the PUBACK did not come in time. The message may or may not have reached the broker; the
     caller still owns it and may send it again (QoS 1 allows duplicates)."""
+
+
+class TlsSetupError(MqttSessionError):
+    """The configured CA, certificate or key cannot be loaded (the config's fault)."""
 
 
 class BrokerRefusedError(MqttSessionError):
@@ -281,6 +287,15 @@ def _reason_value(rc: object) -> int | None:
     return value if isinstance(value, int) else None
 
 
+def _tls_context(broker: BrokerConfig) -> ssl.SSLContext:
+    """Verify the broker against ``tls_ca`` (else the system's trust store), hostname
+    included; present ``tls_cert``/``tls_key`` when the broker wants client certificates."""
+    ctx = ssl.create_default_context(cafile=str(broker.tls_ca) if broker.tls_ca else None)
+    if broker.tls_cert is not None and broker.tls_key is not None:
+        ctx.load_cert_chain(str(broker.tls_cert), str(broker.tls_key))
+    return ctx
+
+
 def _reason_text(exc: MqttConnectError) -> str:
     rc = exc.rc
     return str(rc) if rc is not None and not isinstance(rc, int) else str(exc)
@@ -330,6 +345,7 @@ class MqttSession:
         self._client: aiomqtt.Client | None = None  # set exactly while announced
         self._lost = asyncio.Event()  # set when the announced connection ends
         self._password: str | None = None
+        self._tls: ssl.SSLContext | None = None
         self._started_at = _utcnow()
         self._incoming: asyncio.Queue[IncomingCommand] = asyncio.Queue(_COMMAND_QUEUE)
         self._limiter = LiveLimiter(live_interval_s)
@@ -341,8 +357,15 @@ class MqttSession:
 
     # -- lifecycle --------------------------------------------------------------------
     async def __aenter__(self) -> Self:
-        # Reading a password file is disk I/O: keep it off the event loop.
+        # Reading a password file and TLS certificates is disk I/O: keep it off the loop.
         self._password = await asyncio.to_thread(self.broker.read_password)
+        if self.broker.tls:
+            try:
+                self._tls = await asyncio.to_thread(_tls_context, self.broker)
+            except (OSError, ssl.SSLError) as exc:
+                b = self.broker
+                files = f"tls_ca={b.tls_ca}, tls_cert={b.tls_cert}, tls_key={b.tls_key}"
+                raise TlsSetupError(f"TLS files ({files}) are unusable: {exc}") from exc
         self._started_at = _utcnow()
         stack = contextlib.AsyncExitStack()
         tg = await stack.enter_async_context(asyncio.TaskGroup())
@@ -494,13 +517,6 @@ class MqttSession:
         b = self.broker
         will = StationStatus.offline(self.station_id, self._started_at)
         status_topic = self.topics.station_status()
-        tls = None
-        if b.tls:
-            tls = aiomqtt.TLSParameters(
-                ca_certs=str(b.tls_ca) if b.tls_ca else None,
-                certfile=str(b.tls_cert) if b.tls_cert else None,
-                keyfile=str(b.tls_key) if b.tls_key else None,
-            )
         v5 = level == "5"
         client = aiomqtt.Client(
             b.host,
@@ -516,7 +532,7 @@ class MqttSession:
             clean_start=True if v5 else MQTT_CLEAN_START_FIRST_ONLY,
             keepalive=b.keepalive_s,
             timeout=self._ack_timeout_s,
-            tls_params=tls,
+            tls_context=self._tls,
         )
         self._clients[level] = client
         return client
@@ -571,10 +587,13 @@ class MqttSession:
         self.state.stats.fallbacks += 1
 
     async def _tcp_reachable(self) -> bool:
-        """True when the broker's port accepts a TCP connection (no MQTT spoken)."""
+        """True when the broker's port accepts a connection, through TLS for mqtts:// (so a
+        certificate problem never looks like a protocol problem); no MQTT is spoken."""
         try:
             async with asyncio.timeout(self._ack_timeout_s):
-                _, writer = await asyncio.open_connection(self.broker.host, self.broker.port)
+                _, writer = await asyncio.open_connection(
+                    self.broker.host, self.broker.port, ssl=self._tls
+                )
         except (OSError, TimeoutError):
             return False
         writer.close()
