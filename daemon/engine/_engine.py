@@ -280,6 +280,13 @@ class Engine:
         """Samples accepted since the Engine was created (the next sample's index)."""
         return self._seen
 
+    @property
+    def angle_deg(self) -> float | None:
+        """Counted angle from snug at the last sample fed; None outside a rundown or before
+        snug. For live displays between events (judgement uses the events and the result)."""
+        r = self._r
+        return None if r is None or r.snug is None else r.theta_last
+
     # ----------------------------------------------------------------- inputs
     def select_program(self, program: Program) -> None:
         """Run ``program`` from the next rundown on; only between rundowns (else
