@@ -496,10 +496,11 @@ def _raise_text(key: GroupKey, quantity: _Quantity, point: ChartPoint, chart: Ch
     lim = chart.limits
     assert lim is not None
     tests = sorted(point.fired & chart.settings.alarm_tests)
-    named = "; ".join(f"test {int(t)} ({t.text})" for t in tests)
+    named = "; ".join(f"test {int(t)}, {t.text}" for t in tests)
     return (
-        f"{label} of {key.describe()} is drifting: {named} at {chart.settings.confirm} "
-        f"consecutive subgroups. Latest subgroup mean {point.xbar:.4g} {unit}, chart centre "
+        f"{label} of {key.describe()} is drifting: run-rule tests fired on "
+        f"{chart.settings.confirm} consecutive subgroups (Nelson {named}). "
+        f"Latest subgroup mean {point.xbar:.4g} {unit}, chart centre "
         f"{lim.xbar_center:.4g}, limits {lim.xbar_lcl:.4g} to {lim.xbar_ucl:.4g}. Check tool, "
         "parts and joint against the joint designer's specification before going on."
     )
