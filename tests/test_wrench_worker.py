@@ -46,6 +46,7 @@ from clampd.daemon.runtime._wrench import LiveEventPayload
 from clampd.protocol import (
     Judgement,
     LiveCue,
+    LiveProgress,
     LiveSnug,
     RundownResult,
     Topics,
@@ -297,6 +298,17 @@ async def test_operator_stops_on_the_tool_cue_and_the_result_is_ok_and_durable(r
     assert [c.cue.value for c in cue_events][-1] == "stop"
     snug = next(ev for _, ev in rig.sinks.live if isinstance(ev, LiveSnug))
     assert snug.torque_nm >= 8.0
+    # Progress after snug carries the angle counted so far; it ends near the final angle
+    # (the final angle is taken at the peak torque; 0.5 deg allows the last turning samples).
+    angles = [
+        ev.angle_deg
+        for _, ev in rig.sinks.live
+        if isinstance(ev, LiveProgress) and ev.angle_deg is not None
+    ]
+    assert angles
+    assert result.final_angle_deg is not None
+    assert max(angles) <= result.final_angle_deg + 0.5
+    assert angles == sorted(angles)  # counted angle never decreases
     # Status: connected with the battery and serial the wrench reported.
     connected = [s for s in rig.sinks.statuses if s.connected]
     assert connected

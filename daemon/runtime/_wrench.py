@@ -825,8 +825,8 @@ class WrenchWorker:
                 rundown_id=current.result_id,
                 t_s=max(last_t - current.t0, 0.0),
                 torque_nm=self._last_torque,
-                # The engine exposes no running angle; angle arrives with snug and stop.
-                angle_deg=None,
+                # Counted from snug at the last sample; None before snug.
+                angle_deg=None if self.engine is None else self.engine.angle_deg,
             )
         )
 
