@@ -308,8 +308,14 @@ class MesStandIn:
         *,
         correlation_id: str | None = None,
         timeout_s: float = REPLY_TIMEOUT_S,
+        response_topic: str | None = None,
+        retain: bool = False,
     ) -> dict[str, Any]:
         """Publish arbitrary bytes to ``topic`` and wait for the reply.
+
+        ``response_topic`` replaces this MES's own reply topic in the MQTT 5 property (to
+        try one the station must refuse); ``retain`` publishes retained (which MQTT.md
+        forbids for commands, to check that the station refuses it).
 
         The reply is matched by ``correlation_id`` (MQTT 5 carries it as correlation data,
         so even a payload the station cannot read gets its reply back here); without an id
@@ -326,10 +332,10 @@ class MesStandIn:
         props: Properties | None = None
         if self.level is _Level.V5:
             props = Properties(PacketTypes.PUBLISH)  # type: ignore[no-untyped-call]
-            props.ResponseTopic = self.reply_topic
+            props.ResponseTopic = response_topic or self.reply_topic
             props.CorrelationData = key.encode()
         try:
-            await client.publish(topic, payload, qos=1, properties=props)
+            await client.publish(topic, payload, qos=1, retain=retain, properties=props)
             async with asyncio.timeout(timeout_s):
                 return await fut
         except TimeoutError:

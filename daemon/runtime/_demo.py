@@ -702,6 +702,13 @@ class Technician:
             )
         return bench.step(dt_s)
 
+    def put_down(self) -> None:
+        """The person stops and sets the tool down (e.g. its link went dark): the joint in
+        hand is abandoned, queued ones stay."""
+        bench, self._bench = self._bench, None
+        if bench is not None:
+            self.stop_reasons.append("put-down")
+
     def hear(self, pattern: CuePattern) -> None:
         """A cue from the tool reaches the person."""
         if self._bench is not None:

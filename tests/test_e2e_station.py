@@ -1,0 +1,456 @@
+"""The whole station end to end: real mosquitto, the virtual GATT wrench, the real daemon.
+
+Nothing is faked but the radio. The simulated technician tightens only what he is handed
+and stops only on the cue the station writes to the tool's control characteristic; the MES
+stand-in selects work by MQTT command and checks every result against the JSON Schema that
+``clampd schema`` prints. The SIGKILL test runs ``clampd run`` as a real subprocess that
+joins the test's virtual link through a TCP HCI hub.
+
+Sources beside the checks:
+- protocol/MQTT.md (our published contract): OK exactly when ``reasons`` is empty, reason
+  codes, at-least-once delivery de-duplicated on ``id``, error codes of refused commands,
+  retained ``status`` and its ``offline`` form;
+- the program's own windows as published in the result (judgement rule: inside every window
+  and no fault, DESIGN.md);
+- sd_notify(3) for READY=1 / STOPPING=1; SIGKILL per POSIX (no handler runs).
+The station, programs and joints are the demo scenario's invented data, for testing software
+only; real joints follow the joint designer's specification, local codes and licensed practice.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import dataclasses
+import datetime as dt
+import json
+import os
+import signal
+import socket
+import sys
+from collections.abc import AsyncIterator, Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from clampd.daemon.runtime import NullCuePlayer, Outbox, parse_config
+from clampd.daemon.runtime._config import StationConfig
+from clampd.daemon.runtime._demo import JointGroup, Technician, load_scenario
+from clampd.daemon.runtime._supervisor import Station
+from clampd.simulators import JointModel, OperatorParams, SensorParams, VirtualWrenchSensor
+from clampd.simulators._broker import LocalBroker
+from clampd.simulators._mes import MesStandIn, ReceivedResult
+from clampd.simulators.ble import HciHub, VirtualAir, WrenchIdentity, WrenchPeripheral
+
+CLAMPD = [sys.executable, "-m", "clampd.daemon.cli"]
+SCENARIO = load_scenario()
+GROUPS = {g.wrench_id: g for g in SCENARIO.groups}
+
+
+def overrides(
+    *, prefix: str, broker: LocalBroker, addresses: dict[str, str], journal: Path
+) -> dict[str, str]:
+    """The documented CLAMPD__ overrides that point the scenario's station at this test."""
+    due = (dt.date.today() + dt.timedelta(days=180)).isoformat()
+    env = {
+        "CLAMPD__STATION__TOPIC_PREFIX": prefix,
+        "CLAMPD__BROKER__URL": broker.url,
+        "CLAMPD__OUTBOX__PATH": str(journal),
+    }
+    for i, wrench_id in enumerate(("wr-07", "wr-11")):
+        env[f"CLAMPD__WRENCH__{i}__ADDRESS"] = addresses[wrench_id]
+        env[f"CLAMPD__WRENCH__{i}__CALIBRATION_DUE"] = due
+    return env
+
+
+@dataclasses.dataclass
+class Rig:
+    air: VirtualAir
+    techs: dict[str, Technician]
+    wrenches: dict[str, WrenchPeripheral]
+    rng: np.random.Generator
+
+    def hand_over(self, wrench_id: str, operator: OperatorParams | None = None) -> None:
+        group: JointGroup = GROUPS[wrench_id]
+        self.techs[wrench_id].hand_over(
+            JointModel.sample(self.rng, group.population),
+            operator or OperatorParams(steady_rate_dps=group.pull_rate_dps),
+        )
+
+
+@contextlib.asynccontextmanager
+async def virtual_wrenches(seed: int = 11) -> AsyncIterator[Rig]:
+    """Both scenario wrenches on a virtual link, each with a technician waiting for work."""
+    rng = np.random.default_rng(seed)
+    async with VirtualAir() as air:
+        techs: dict[str, Technician] = {}
+        wrenches: dict[str, WrenchPeripheral] = {}
+        for wrench_id, capacity in (("wr-07", 100.0), ("wr-11", 40.0)):
+            group = GROUPS[wrench_id]
+            tech = Technician(
+                np.random.default_rng(rng.integers(2**32)), deflection_deg_per_nm=0.02
+            )
+            sensor = VirtualWrenchSensor(
+                SensorParams(serial=group.serial, torque_max_nm=capacity),
+                np.random.default_rng(rng.integers(2**32)),
+                tech,
+            )
+            wrenches[wrench_id] = await air.add_wrench(
+                sensor, name=wrench_id.upper(), identity=WrenchIdentity(serial=group.serial)
+            )
+            techs[wrench_id] = tech
+        yield Rig(air, techs, wrenches, rng)
+
+
+@dataclasses.dataclass
+class Live:
+    rig: Rig
+    station: Station
+    mes: MesStandIn
+    results: asyncio.Queue[ReceivedResult]
+
+    async def next_result(self, timeout_s: float = 60.0) -> ReceivedResult:
+        async with asyncio.timeout(timeout_s):
+            return await self.results.get()
+
+
+@pytest.fixture
+async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncIterator[Live]:
+    """The daemon in this process (the code ``clampd run`` starts), the MES beside it."""
+    async with virtual_wrenches() as rig:
+        env = overrides(
+            prefix=topic_prefix,
+            broker=broker,
+            addresses={w: p.address for w, p in rig.wrenches.items()},
+            journal=tmp_path / "journal.sqlite3",
+        )
+        config: StationConfig = parse_config(
+            SCENARIO.station_toml, env=env, base_dir=tmp_path
+        ).config
+        station = Station(
+            config, bleak_kwargs=lambda _w: rig.air.bleak_kwargs(), cue_player=NullCuePlayer()
+        )
+        stop = asyncio.Event()
+        results: asyncio.Queue[ReceivedResult] = asyncio.Queue()
+        task = asyncio.create_task(station.run(stop), name="clampd.test.station")
+        try:
+            async with MesStandIn(
+                broker.host, broker.port, topic_prefix, on_result=results.put_nowait
+            ) as mes:
+                await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
+                for w in ("wr-07", "wr-11"):
+                    await wait_for_status(
+                        mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
+                    )
+                yield Live(rig, station, mes, results)
+        finally:
+            stop.set()
+            async with asyncio.timeout(30):
+                await task
+
+
+async def eventually(check: Callable[[], bool], timeout_s: float = 30.0) -> None:
+    """Wait until ``check()`` holds (state with no event of its own to wait on)."""
+    async with asyncio.timeout(timeout_s):
+        while True:
+            if check():
+                return
+            await asyncio.sleep(0.02)
+
+
+async def wait_for_status(
+    mes: MesStandIn, sub: str, ok: Any, timeout_s: float = 30.0
+) -> dict[str, Any]:
+    topic = f"{mes.prefix}/{sub}"
+    await eventually(lambda: bool(ok(mes.statuses.get(topic, {}))), timeout_s)
+    return mes.statuses[topic]
+
+
+def inside_windows(result: dict[str, Any]) -> bool:
+    """The judgement rule applied by the test itself to the published figures."""
+    w = result["windows"]
+    torque, angle = result["final_torque_nm"], result["final_angle_deg"]
+    return (
+        w["torque_min_nm"] <= torque <= w["torque_max_nm"]
+        and angle is not None
+        and w["angle_min_deg"] <= angle <= w["angle_max_deg"]
+    )
+
+
+# -- select → tighten → result on the broker ----------------------------------------------------
+
+
+async def test_selected_program_gives_ok_for_a_good_joint_and_nok_out_of_window(
+    live: Live,
+) -> None:
+    mes = live.mes
+    reply = await mes.select_program(
+        "spindle-m10-8.8",
+        "DK48-2026-000901",
+        ["spindle-bolt-1", "spindle-bolt-2"],
+        wrench_id="wr-07",
+    )
+    assert reply["status"] == "ok", reply
+    status = await wait_for_status(mes, "status", lambda s: s.get("selection") is not None)
+    assert status["selection"]["next_position"] == "spindle-bolt-1"
+
+    # A good joint: the technician stops on the tool's cue.
+    live.rig.hand_over("wr-07")
+    good = await live.next_result()
+    assert good.valid, good.errors
+    p = good.payload
+    assert p is not None
+    assert (p["part_id"], p["joint_position"], p["program"]["program_id"]) == (
+        "DK48-2026-000901",
+        "spindle-bolt-1",
+        "spindle-m10-8.8",
+    )
+    assert p["strategy"] == "torque_angle"
+    assert p["stop_trigger"] == "angle_reached"
+    assert p["status"] == "OK", p["reasons"]
+    assert p["reasons"] == []
+    assert inside_windows(p)
+    tech = live.rig.techs["wr-07"]
+    await eventually(lambda: bool(tech.stop_reasons), 10)
+    assert tech.stop_reasons[0] == "stop-cue"  # heard over GATT, nowhere else
+
+    # Forced out of its window: deaf to the cues, he pulls on to 85 deg from the first
+    # contact, which is 36-52 deg past snug on these joints (window 17-24 deg).
+    live.rig.hand_over(
+        "wr-07",
+        OperatorParams(steady_rate_dps=30.0, ignore_cues=True, stop_at_angle_deg=85.0),
+    )
+    bad = await live.next_result()
+    assert bad.valid, bad.errors
+    q = bad.payload
+    assert q is not None
+    assert q["joint_position"] == "spindle-bolt-2"
+    assert q["status"] == "NOK"
+    assert not inside_windows(q)
+    assert "angle_high" in q["reasons"]
+    # Exactly these two results, once each.
+    assert [r.id for r in mes.unique_results()] == [good.id, bad.id]
+    assert not mes.duplicates
+
+
+async def test_bad_and_unauthorised_commands_get_error_replies_and_the_station_goes_on(
+    live: Live,
+) -> None:
+    mes = live.mes
+    cmd = f"{mes.prefix}/cmd"
+    cases: list[tuple[str, bytes, dict[str, Any], str]] = [
+        (f"{cmd}/select_program", b"{not json", {}, "bad_json"),
+        (f"{cmd}/select_program", b"[" * 100 + b"]" * 100, {}, "too_deep"),
+        (f"{cmd}/select_program", b"\xff\xfe", {}, "bad_encoding"),
+        (f"{cmd}/self_destruct", b"{}", {}, "unknown_command"),
+        (
+            f"{cmd}/select_program",
+            json.dumps({"schema_version": "1", "program_id": 7}).encode(),
+            {},
+            "invalid_fields",
+        ),
+        # A reply topic inside the station's own tree: refused (MQTT.md, reply topics).
+        (
+            f"{cmd}/ping",
+            b'{"schema_version": "1"}',
+            {"response_topic": f"{mes.prefix}/result"},
+            "bad_reply_topic",
+        ),
+        # A lock dressed up as a ping, and a schema from the future.
+        (f"{cmd}/ping", b'{"schema_version": "1", "kind": "lock"}', {}, "kind_mismatch"),
+        (f"{cmd}/lock", b'{"schema_version": "2"}', {}, "unsupported_version"),
+    ]
+    for topic, payload, extra, code in cases:
+        reply = await mes.send_raw(topic, payload, **extra)
+        assert (reply["status"], reply["code"]) == ("error", code), (topic, payload[:20], reply)
+    refused = [
+        (await mes.select_program("no-such-program", "P-1", ["a"]))["code"],
+        (await mes.select_program("spindle-m10-8.8", "P-1", ["a"], wrench_id="wr-99"))["code"],
+        (await mes.abort("wr-07"))["code"],
+    ]
+    assert refused == ["unknown_program", "unknown_wrench", "nothing_to_abort"]
+    # None of the refused commands changed anything: nothing is locked, and it answers.
+    pong = await mes.ping()
+    assert pong["status"] == "ok"
+    status = await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
+    assert status["locked"] is False
+    # And it still does its job: a rundown after all that is judged and delivered.
+    ok = await mes.select_program("guard-m8-torque", "P-2", ["guard-screw-1"], wrench_id="wr-11")
+    assert ok["status"] == "ok"
+    live.rig.hand_over("wr-11")
+    result = await live.next_result()
+    assert result.valid
+    assert result.payload is not None
+    assert result.payload["joint_position"] == "guard-screw-1"
+
+
+async def test_link_dropped_mid_rundown_is_nok_link_lost_and_the_link_comes_back(
+    live: Live,
+) -> None:
+    mes = live.mes
+    reply = await mes.select_program(
+        "spindle-m10-8.8",
+        "DK48-2026-000902",
+        ["spindle-bolt-1", "spindle-bolt-2"],
+        wrench_id="wr-07",
+    )
+    assert reply["status"] == "ok"
+    worker = live.station.slots["wr-07"].worker
+    wrench = live.rig.wrenches["wr-07"]
+    live.rig.hand_over("wr-07", OperatorParams(steady_rate_dps=20.0))
+    await eventually(lambda: worker.in_rundown)
+    await asyncio.sleep(0.3)  # well into the rundown
+    await wrench.go_out_of_range()
+    live.rig.techs["wr-07"].put_down()  # the tool went dark: the technician lets go
+    lost = await live.next_result()
+    assert lost.payload is not None
+    assert lost.valid, lost.errors
+    assert lost.payload["status"] == "NOK"
+    assert "link_lost" in lost.payload["reasons"]
+    assert lost.payload["stop_trigger"] == "link_lost"
+    assert lost.payload["curve"]["raw_sample_count"] > 0  # the partial curve is kept
+    await wait_for_status(mes, "wrench/wr-07/status", lambda s: s.get("connected") is False)
+    await wrench.come_back_in_range()
+    await wait_for_status(mes, "wrench/wr-07/status", lambda s: s.get("connected") is True)
+    # The station marked the lost position NOK and moved on; the next joint is judged again.
+    live.rig.hand_over("wr-07")
+    again = await live.next_result()
+    assert again.payload is not None
+    assert again.payload["joint_position"] == "spindle-bolt-2"
+    assert again.payload["status"] == "OK", again.payload["reasons"]
+
+
+# -- SIGKILL between the durable write and the publish ----------------------------------------
+
+
+@contextlib.contextmanager
+def notify_socket(path: Path) -> Any:
+    with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM) as sock:
+        sock.bind(str(path))
+        sock.setblocking(False)
+        yield sock
+
+
+def notifications(sock: socket.socket) -> list[str]:
+    out: list[str] = []
+    with contextlib.suppress(BlockingIOError):
+        while True:
+            out.append(sock.recv(4096).decode())
+    return out
+
+
+async def start_daemon(
+    config: Path, hub: HciHub, env: dict[str, str], log: Path
+) -> asyncio.subprocess.Process:
+    with log.open("ab") as f:
+        return await asyncio.create_subprocess_exec(
+            *CLAMPD,
+            "-v",
+            "run",
+            "--config",
+            str(config),
+            "--ble-hci",
+            hub.spec,
+            env={**os.environ, **env},
+            stdout=asyncio.subprocess.DEVNULL,
+            stderr=f,
+        )
+
+
+def journal_entries(path: Path) -> list[Any]:
+    if not path.exists():  # never create the daemon's journal from the test
+        return []
+    with Outbox(path) as ob:
+        return ob.list(limit=100, newest_first=False)
+
+
+async def wait_journal(path: Path, check: Any, timeout_s: float = 60.0) -> list[Any]:
+    async with asyncio.timeout(timeout_s):
+        while True:
+            entries = await asyncio.to_thread(journal_entries, path)
+            if check(entries):
+                return entries
+            await asyncio.sleep(0.1)
+
+
+def vm_rss_kib(pid: int) -> int:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1])
+    raise AssertionError("no VmRSS")
+
+
+@pytest.mark.slow
+async def test_result_written_but_not_published_survives_sigkill_exactly_once(
+    broker: LocalBroker, topic_prefix: str, tmp_path: Path
+) -> None:
+    config = tmp_path / "station.toml"
+    config.write_text(SCENARIO.station_toml)
+    journal = tmp_path / "journal" / "outbox.sqlite3"
+    log = tmp_path / "daemon.log"
+    async with virtual_wrenches(seed=5) as rig, HciHub(rig.air.link) as hub:  # type: ignore[arg-type]
+        env = overrides(
+            prefix=topic_prefix,
+            broker=broker,
+            addresses={w: p.address for w, p in rig.wrenches.items()},
+            journal=journal,
+        )
+        with notify_socket(tmp_path / "notify.sock") as sock:
+            env["NOTIFY_SOCKET"] = str(tmp_path / "notify.sock")
+            daemon = await start_daemon(config, hub, env, log)
+            try:
+                async with MesStandIn(broker.host, broker.port, topic_prefix) as mes:
+                    await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
+                    for w in ("wr-07", "wr-11"):
+                        await wait_for_status(
+                            mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
+                        )
+                    assert any(n.startswith("READY=1") for n in notifications(sock))
+                    rss_kib = vm_rss_kib(daemon.pid)  # two wrenches connected and streaming
+                    reply = await mes.select_program(
+                        "guard-m8-torque", "DK48-2026-000903", ["guard-screw-1"], wrench_id="wr-11"
+                    )
+                    assert reply["status"] == "ok"
+                # The broker goes away; the result can be written but not published.
+                await broker.stop()
+                rig.hand_over("wr-11")
+                entries = await wait_journal(journal, lambda es: len(es) == 1)
+                assert not entries[0].sent
+                written_id = entries[0].id
+                daemon.send_signal(signal.SIGKILL)
+                assert await daemon.wait() == -signal.SIGKILL
+            finally:
+                if daemon.returncode is None:
+                    daemon.kill()
+                    await daemon.wait()
+            # Back up: broker first, the MES listening, then the daemon again.
+            await broker.start()
+            async with MesStandIn(broker.host, broker.port, topic_prefix) as mes:
+                daemon = await start_daemon(config, hub, env, log)
+                try:
+                    (result,) = await mes.wait_results(1, timeout_s=60)
+                    assert result.id == written_id
+                    assert result.valid, result.errors
+                    await wait_journal(journal, lambda es: all(e.sent for e in es))
+                    # A little longer: nothing else may arrive (exactly one delivery).
+                    await asyncio.sleep(1.0)
+                    assert [r.id for r in mes.results] == [written_id]
+                    daemon.send_signal(signal.SIGTERM)
+                    async with asyncio.timeout(30):
+                        assert await daemon.wait() == 0
+                    status = await wait_for_status(
+                        mes, "status", lambda s: s.get("state") == "offline"
+                    )
+                    assert status["state"] == "offline"
+                finally:
+                    if daemon.returncode is None:
+                        daemon.kill()
+                        await daemon.wait()
+            sent = notifications(sock)
+            assert any(n.startswith("READY=1") for n in sent)
+            assert "STOPPING=1" in sent
+    # Resident memory of `clampd run` with two wrenches, for the report (-s shows it).
+    print(f"\nclampd run VmRSS with two wrenches streaming: {rss_kib / 1024:.1f} MiB")
+    assert rss_kib > 0
