@@ -106,23 +106,6 @@ from clampd.daemon.runtime._wrench import (
     WrenchWorker,
     engine_settings,
 )
-from clampd.daemon.runtime._results import (
-    ClockAnchor,
-    OutboxResultSink,
-    ResultContext,
-    ResultSink,
-    build_result,
-)
-from clampd.daemon.runtime._wrench import (
-    LiveSink,
-    StationPort,
-    StatusSink,
-    WorkerStats,
-    WorkOrder,
-    WrenchLinkPort,
-    WrenchWorker,
-    engine_settings,
-)
 
 __all__ = [
     "ACK_TIMEOUT_S",
