@@ -29,7 +29,7 @@ import datetime as dt
 import ipaddress
 import os
 import signal
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 
 from cryptography import x509
@@ -39,7 +39,15 @@ from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
 from clampd.simulators._broker import BrokerUnavailableError, mosquitto_path
 
-__all__ = ["DEPLOY", "Identity", "Pki", "deploy_broker_config", "make_pki", "run_mosquitto"]
+__all__ = [
+    "DEPLOY",
+    "Identity",
+    "Pki",
+    "deploy_broker_config",
+    "make_pki",
+    "run_mosquitto",
+    "wait_until",
+]
 
 _ORG = "Brackenfield Garden Machines (test)"
 
@@ -291,3 +299,15 @@ async def run_mosquitto(config: str, workdir: Path, port: int) -> AsyncIterator[
         if proc.returncode is None:
             proc.send_signal(signal.SIGTERM)
             await proc.wait()
+
+
+async def wait_until(check: Callable[[], bool], what: str, timeout_s: float = 20.0) -> None:
+    """Wait, bounded, until ``check()`` holds (for state that has no event to await, such as
+    a counter or a log line). The bound is a safety net; callers assert on what they see."""
+    try:
+        async with asyncio.timeout(timeout_s):
+            # 20 ms polls: far below any wait here, light on a 2-core machine.
+            while not check():  # noqa: ASYNC110
+                await asyncio.sleep(0.02)
+    except TimeoutError:
+        raise AssertionError(f"gave up waiting for {what} after {timeout_s} s") from None

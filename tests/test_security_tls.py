@@ -40,7 +40,7 @@ from pathlib import Path
 
 import aiomqtt
 import pytest
-from security_pki import Identity, Pki, deploy_broker_config, make_pki, run_mosquitto
+from security_pki import Identity, Pki, deploy_broker_config, make_pki, run_mosquitto, wait_until
 
 from clampd.daemon.runtime import (
     BrokerConfig,
@@ -129,14 +129,7 @@ def _mes_client(broker: TlsBroker, pki: Pki, ident: Identity) -> aiomqtt.Client:
 
 
 async def _until(check: Callable[[], bool], what: str) -> None:
-    """Wait (bounded) until ``check()`` holds; the caller asserts on what it then sees."""
-    try:
-        async with asyncio.timeout(WAIT_S):
-            # No event exists for "a log line appeared": poll (20 ms, far below any wait).
-            while not check():  # noqa: ASYNC110
-                await asyncio.sleep(0.02)
-    except TimeoutError:
-        pytest.fail(f"gave up waiting for {what} after {WAIT_S} s")
+    await wait_until(check, what, WAIT_S)
 
 
 def _open_fds() -> int:

@@ -31,7 +31,11 @@ Publishing
 ----------
 ``publish`` returns only after the broker acknowledged a QoS 1 message (PUBACK) and raises
 ``BrokerUnavailable`` when there is no connection, when it is lost before the PUBACK, or when
-the PUBACK does not come in time; the caller keeps what it tried to send. Live events take a
+the PUBACK does not come in time; the caller keeps what it tried to send. A PUBACK with a
+failure reason code (MQTT 5.0 §3.4.2.1, e.g. 0x87 Not authorized from a broker ACL) is no
+acknowledgement: aiomqtt 2.5 would complete the publish on it, so ``_Client`` leaves such a
+publish unconfirmed and it ends as ``BrokerUnavailable`` (mosquitto 2.0 drops the connection
+right after, measured; otherwise at the ack timeout). Live events take a
 separate path (``publish_live``): QoS 0, at most one message per wrench per
 ``LIVE_INTERVAL_S`` with the latest progress winning, and dropped while offline.
 
@@ -52,13 +56,15 @@ import random
 import ssl
 from collections.abc import AsyncIterator, Callable
 from types import TracebackType
-from typing import Literal, Self
+from typing import Any, Literal, Self
 
 import aiomqtt
 from aiomqtt.exceptions import MqttConnectError
+from paho.mqtt import client as paho_client
 from paho.mqtt.client import MQTT_CLEAN_START_FIRST_ONLY
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.reasoncodes import ReasonCode
 from pydantic import BaseModel
 
 from clampd.daemon.runtime._backoff import next_delay
@@ -163,6 +169,7 @@ class SessionStats:
     live_dropped: int = 0
     commands_received: int = 0
     commands_dropped: int = 0
+    publishes_refused: int = 0
 
 
 @dataclasses.dataclass(slots=True)
@@ -518,7 +525,7 @@ class MqttSession:
         will = StationStatus.offline(self.station_id, self._started_at)
         status_topic = self.topics.station_status()
         v5 = level == "5"
-        client = aiomqtt.Client(
+        client = _Client(
             b.host,
             b.port,
             username=b.username,
@@ -533,9 +540,14 @@ class MqttSession:
             keepalive=b.keepalive_s,
             timeout=self._ack_timeout_s,
             tls_context=self._tls,
+            on_refused=self._publish_refused,
         )
         self._clients[level] = client
         return client
+
+    def _publish_refused(self, mid: int, reason: str) -> None:
+        self.state.stats.publishes_refused += 1
+        _log.warning("broker %s refused a publish (message id %d): %s", self._where, mid, reason)
 
     async def _run(self) -> None:
         attempt = 0
@@ -672,6 +684,33 @@ class MqttSession:
                     self.state.stats.live_dropped += 1
                 else:
                     self.state.stats.live_sent += 1
+
+
+class _Client(aiomqtt.Client):
+    """aiomqtt's client, except that a refused PUBACK is not taken for a delivery.
+
+    aiomqtt 2.5 confirms a publish on any PUBACK, whatever its reason code; a result the
+    broker's ACL discarded would then be marked sent in the outbox and lost. A failure code
+    leaves the publish unconfirmed (see the module docstring) and is reported to
+    ``on_refused``.
+    """
+
+    def __init__(self, *args: Any, on_refused: Callable[[int, str], None], **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self._on_refused = on_refused
+
+    def _on_publish(
+        self,
+        client: paho_client.Client,
+        userdata: Any,
+        mid: int,
+        reason_code: ReasonCode,
+        properties: Properties,
+    ) -> None:
+        if reason_code.is_failure:
+            self._on_refused(mid, str(reason_code))
+            return
+        super()._on_publish(client, userdata, mid, reason_code, properties)
 
 
 def _json(payload: BaseModel) -> bytes:
