@@ -151,7 +151,7 @@ def _summary(rate: float, runs: Sequence[AngleRun]) -> dict[str, Any]:
 
 
 def angle_study(
-    joints: int, seed: int, *, workers: int | None = None
+    joints: int, seed: int, *, workers: int | None = 1
 ) -> tuple[dict[str, Any], dict[str, list[tuple[float, float]]]]:
     """Run the study: (figures keyed by rate case, (true, error) pairs per case).
 

@@ -152,7 +152,7 @@ def _summary(case: CueCase, runs: Sequence[CueRun], target: float) -> dict[str, 
 
 
 def cue_study(
-    joints: int, seed: int, *, workers: int | None = None
+    joints: int, seed: int, *, workers: int | None = 1
 ) -> tuple[dict[str, Any], dict[str, list[float]]]:
     """Run the study: (figures keyed by case, counted angle errors per case in joint order).
 

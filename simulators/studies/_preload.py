@@ -255,7 +255,7 @@ def _program_summary(p: Program) -> dict[str, Any]:
 
 
 def preload_study(
-    joints: int, seed: int, *, workers: int | None = None
+    joints: int, seed: int, *, workers: int | None = 1
 ) -> tuple[dict[str, Any], dict[str, list[float]]]:
     """Run the study: (figures keyed by strategy, preloads per strategy in joint order).
 

@@ -56,9 +56,11 @@ class StudyReport:
                 plot_angle(path, self.values)
 
 
-def run_study(kind: str, *, joints: int, seed: int, workers: int | None = None) -> StudyReport:
+def run_study(kind: str, *, joints: int, seed: int, workers: int | None = 1) -> StudyReport:
     """Run one study. ``workers`` processes share the joints (None: one per CPU); the figures
-    do not depend on it. Raises :class:`StudyError` on an unknown kind or bad arguments."""
+    do not depend on it. Workers are spawned interpreters that import the caller's main
+    module, so a script asking for more than one needs the ``if __name__ == "__main__":``
+    guard. Raises :class:`StudyError` on an unknown kind or bad arguments."""
     values: dict[str, Any]
     match kind:
         case "preload":
