@@ -149,14 +149,19 @@ class ViewServer:
         self.hub = hub
         self.host = host
         self._port = port
-        self._assets = dict(assets) if assets is not None else load_assets()
+        self._assets: dict[str, tuple[bytes, str]] | None = (
+            dict(assets) if assets is not None else None
+        )
         self._heartbeat_s = heartbeat_s
         self._max_streams = max_streams
         self._server: asyncio.Server | None = None
         self._loopback_only = _is_loopback_host(host)
         self._streams: set[asyncio.Task[None]] = set()
         self.bytes_sent = 0
-        """Bytes of response bodies and heads written (the page-weight measurement reads it)."""
+        """Bytes of response heads and bodies written, event streams included."""
+        self.served: dict[str, int] = {}
+        """Bytes written per path; for ``/events`` only each stream's head and first message
+        (the snapshot a page loads with). The page-weight measurement sums these."""
 
     @property
     def port(self) -> int:
@@ -177,7 +182,10 @@ class ViewServer:
         return len(self._streams)
 
     async def start(self) -> None:
-        """Bind and listen (raises ``ViewServerError`` when the address is unavailable)."""
+        """Read the assets (in a thread: file reads stall the loop on a slow SD card), bind
+        and listen. Raises ``ViewServerError`` when assets or the address are unavailable."""
+        if self._assets is None:
+            self._assets = await asyncio.to_thread(load_assets)
         try:
             self._server = await asyncio.start_server(
                 self._client, self.host, self._port, limit=MAX_HEAD_BYTES
@@ -227,7 +235,12 @@ class ViewServer:
                 return
             except (TimeoutError, asyncio.IncompleteReadError, ConnectionError):
                 return
-            await self._route(writer, method, path, headers)
+            before = self.bytes_sent
+            try:
+                await self._route(writer, method, path, headers)
+            finally:
+                if path != "/events":
+                    self.served[path] = self.served.get(path, 0) + self.bytes_sent - before
         except ConnectionError:
             pass  # the page went away mid-response
         finally:
@@ -283,7 +296,8 @@ class ViewServer:
             await self._respond(writer, 200, body, "application/json", head_only=head_only)
             return
         name = "index.html" if path == "/" else path.removeprefix("/assets/")
-        asset = self._assets.get(name) if (path == "/" or path.startswith("/assets/")) else None
+        assets = self._assets or {}
+        asset = assets.get(name) if (path == "/" or path.startswith("/assets/")) else None
         if asset is None or "/" in name:
             await self._respond(writer, 404, b"not found\n", "text/plain", head_only=head_only)
             return
@@ -347,6 +361,7 @@ class ViewServer:
         task = asyncio.current_task()
         assert task is not None
         self._streams.add(task)
+        first = True
         try:
             with self.hub.subscribe() as sub:
                 writer.write(f"retry: {_RETRY_MS}\n\n".encode())
@@ -361,6 +376,11 @@ class ViewServer:
                         while (more := sub.next_nowait()) is not None:
                             chunk += _sse(more)
                         self.bytes_sent += len(chunk)
+                        if first:
+                            first = False
+                            self.served["/events"] = (
+                                self.served.get("/events", 0) + len(head) + len(chunk)
+                            )
                         writer.write(chunk)
                     await writer.drain()
         finally:
