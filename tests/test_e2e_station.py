@@ -110,6 +110,8 @@ class Live:
     station: Station
     mes: MesStandIn
     results: asyncio.Queue[ReceivedResult]
+    stop: asyncio.Event
+    task: asyncio.Task[None]
 
     async def next_result(self, timeout_s: float = 60.0) -> ReceivedResult:
         async with asyncio.timeout(timeout_s):
@@ -144,7 +146,7 @@ async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncI
                     await wait_for_status(
                         mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
                     )
-                yield Live(rig, station, mes, results)
+                yield Live(rig, station, mes, results, stop, task)
         finally:
             stop.set()
             async with asyncio.timeout(30):
@@ -454,3 +456,48 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
     # Resident memory of `clampd run` with two wrenches, for the report (-s shows it).
     print(f"\nclampd run VmRSS with two wrenches streaming: {rss_kib / 1024:.1f} MiB")
     assert rss_kib > 0
+
+
+# -- isolation and shutdown ------------------------------------------------------------------
+
+
+async def test_a_wrench_that_vanishes_does_not_stop_the_other(live: Live) -> None:
+    mes = live.mes
+    await live.rig.wrenches["wr-11"].go_out_of_range()
+    await wait_for_status(mes, "wrench/wr-11/status", lambda s: s.get("connected") is False)
+    reply = await mes.select_program(
+        "spindle-m10-8.8", "DK48-2026-000904", ["spindle-bolt-1"], wrench_id="wr-07"
+    )
+    assert reply["status"] == "ok"
+    live.rig.hand_over("wr-07")
+    result = await live.next_result()
+    assert result.payload is not None
+    assert result.payload["status"] == "OK", result.payload["reasons"]
+    # Its link task keeps retrying on its own and the daemon never stopped.
+    assert not live.task.done()
+    assert live.station.slots["wr-11"].restarts == 0
+    assert live.station.slots["wr-11"].parked is None
+
+
+async def test_stop_during_a_rundown_lets_it_finish_flushes_and_says_offline(
+    live: Live,
+) -> None:
+    mes = live.mes
+    reply = await mes.select_program(
+        "guard-m8-torque", "DK48-2026-000905", ["guard-screw-1"], wrench_id="wr-11"
+    )
+    assert reply["status"] == "ok"
+    worker = live.station.slots["wr-11"].worker
+    live.rig.hand_over("wr-11")
+    await eventually(lambda: worker.in_rundown)
+    live.stop.set()  # what SIGTERM does in `clampd run`
+    async with asyncio.timeout(30):
+        await live.task
+    # The rundown in progress was finished (not cut off), stored, and flushed before exit.
+    result = await live.next_result(timeout_s=10)
+    assert result.payload is not None
+    assert result.payload["joint_position"] == "guard-screw-1"
+    assert result.payload["status"] == "OK", result.payload["reasons"]
+    assert live.station.unsent_at_stop == 0
+    status = await wait_for_status(mes, "status", lambda s: s.get("state") == "offline")
+    assert status["state"] == "offline"

@@ -444,7 +444,7 @@ class Station:
         with contextlib.suppress(TimeoutError):
             async with asyncio.timeout(self._finish_grace_s):
                 await self._no_rundown()
-        if any(s.worker.in_rundown for s in self.slots.values()):
+        if not all(_settled(s.worker) for s in self.slots.values()):
             for slot in self.slots.values():
                 if slot.worker.request_abort():
                     _log.warning("%s: rundown aborted at shutdown", slot.config.id)
@@ -462,9 +462,11 @@ class Station:
                 )
 
     async def _no_rundown(self) -> None:
-        # Polled: the worker has no "rundown ended" event to wait on, and the check is a
-        # few attribute reads every 50 ms during shutdown only.
-        while any(s.worker.in_rundown for s in self.slots.values()):  # noqa: ASYNC110
+        # Settled: no rundown in progress and every judged result durable (or held after an
+        # outbox refusal). A finished rundown is mapped and stored by the worker's results
+        # task a moment later, so "not in a rundown" alone would race the store.
+        # Polled: the worker has no "settled" event, and this runs during shutdown only.
+        while not all(_settled(s.worker) for s in self.slots.values()):  # noqa: ASYNC110
             await asyncio.sleep(_POLL_S)
 
     async def _drain(self) -> None:
@@ -499,6 +501,13 @@ class Station:
             if removed:
                 _log.info("journal: %d sent result(s) past retention removed", removed)
             await asyncio.sleep(_PRUNE_EVERY_S)
+
+
+def _settled(worker: WrenchWorker) -> bool:
+    stats = worker.stats
+    return not worker.in_rundown and stats.results_stored + worker.unstored_results >= (
+        stats.rundowns
+    )
 
 
 def _version() -> str:
