@@ -28,7 +28,7 @@ from pathlib import Path
 
 __all__ = ["add_arguments", "run"]
 
-_DEFAULT_OUT = Path("clampd-demo")
+_DEFAULT_OUT = Path("demo-output")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
