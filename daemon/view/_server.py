@@ -157,6 +157,7 @@ class ViewServer:
         self._server: asyncio.Server | None = None
         self._loopback_only = _is_loopback_host(host)
         self._streams: set[asyncio.Task[None]] = set()
+        self._closing = False
         self.bytes_sent = 0
         """Bytes of response heads and bodies written, event streams included."""
         self.served: dict[str, int] = {}
@@ -184,6 +185,7 @@ class ViewServer:
     async def start(self) -> None:
         """Read the assets (in a thread: file reads stall the loop on a slow SD card), bind
         and listen. Raises ``ViewServerError`` when assets or the address are unavailable."""
+        self._closing = False
         if self._assets is None:
             self._assets = await asyncio.to_thread(load_assets)
         try:
@@ -198,6 +200,7 @@ class ViewServer:
 
     async def close(self) -> None:
         """Stop listening and end every open stream."""
+        self._closing = True
         server, self._server = self._server, None
         if server is not None:
             server.close()
@@ -243,6 +246,14 @@ class ViewServer:
                     self.served[path] = self.served.get(path, 0) + self.bytes_sent - before
         except ConnectionError:
             pass  # the page went away mid-response
+        except asyncio.CancelledError:
+            # close() ended this stream. The connection's task is asyncio's, whose done
+            # callback (3.11) reads task.exception() and would log a cancelled task as an
+            # error: end it normally instead. Any other cancellation propagates.
+            task = asyncio.current_task()
+            if not self._closing or task is None:
+                raise
+            task.uncancel()
         finally:
             writer.close()
             with contextlib.suppress(ConnectionError, asyncio.CancelledError):

@@ -208,21 +208,23 @@
     for (const n of Array.from(svg.childNodes)) if (n.nodeName !== "title") svg.removeChild(n);
     const L = (r && r.limits) || (job && job.limits) || null;
     const pts = r ? r.points : [];
+    // Angle: zoom on what matters (the curve, the angle targets, where the window opens);
+    // a window reaching past the right edge is drawn open there. Torque: the whole window.
     let amax = 10, tmax = 5;
     for (const p of pts) {
-      if (p[0] !== null && p[0] > amax) amax = p[0];
+      if (p[0] !== null && p[0] * 1.3 > amax) amax = p[0] * 1.3;
       if (p[1] > tmax) tmax = p[1];
     }
     if (L) {
-      for (const a of L.targets_deg) amax = Math.max(amax, a);
-      if (L.angle_window) amax = Math.max(amax, L.angle_window[1]);
+      for (const a of L.targets_deg) amax = Math.max(amax, a * 1.15);
+      if (L.angle_window) amax = Math.max(amax, L.angle_window[0] * 1.3);
       for (const t of L.targets_nm) tmax = Math.max(tmax, t);
       if (L.torque_window) tmax = Math.max(tmax, L.torque_window[1]);
       tmax = Math.max(tmax, L.snug_nm);
     }
-    amax *= 1.12; tmax *= 1.12;
+    tmax *= 1.12;
     const m = { l: 48, r: 12, t: 10, b: 30 };
-    const X = (a) => m.l + (Math.max(0, a) / amax) * (W - m.l - m.r);
+    const X = (a) => m.l + (Math.min(Math.max(0, a), amax) / amax) * (W - m.l - m.r);
     const Y = (t) => H - m.b - (t / tmax) * (H - m.t - m.b);
     const g = sv("g");
     const xs = niceStep(amax, W > 900 ? 10 : 6), ys = niceStep(tmax, H > 500 ? 8 : 5);
