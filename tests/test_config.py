@@ -318,6 +318,30 @@ def test_other_sections_validate() -> None:
     assert cfg.client_id == "clampd-st-1"
 
 
+def test_view_section_defaults_to_loopback_and_validates() -> None:
+    cfg = parse_config(MINIMAL, env={}).config
+    assert (cfg.view.enabled, cfg.view.bind, cfg.view.port) == (True, "127.0.0.1", 8740)
+    example = load_config(EXAMPLE, env={}, check_files=False, today=TODAY).config
+    assert example.view == cfg.view
+    text = MINIMAL + '[view]\nbind = "localhost"\nport = 0\n'
+    assert parse_config(text, env={}).config.view.bind == "127.0.0.1"
+    with pytest.raises(ConfigError) as info:
+        parse_config(MINIMAL + '[view]\nbind = "station.example"\nport = 70000\n', env={})
+    assert _paths(info.value) == ["view.bind", "view.port"]
+    env = {"CLAMPD__VIEW__PORT": "8801", "CLAMPD__VIEW__ENABLED": "false"}
+    view = parse_config(MINIMAL, env=env).config.view
+    assert (view.port, view.enabled) == (8801, False)
+
+
+def test_a_view_bound_beyond_loopback_warns() -> None:
+    for bind, warned in (("0.0.0.0", True), ("192.0.2.10", True), ("::1", False)):
+        text = MINIMAL + f'[view]\nbind = "{bind}"\n'
+        got = [w for w in parse_config(text, env={}).warnings if w.startswith("view.bind")]
+        assert bool(got) is warned, (bind, got)
+    off = MINIMAL + '[view]\nenabled = false\nbind = "0.0.0.0"\n'
+    assert not any(w.startswith("view.bind") for w in parse_config(off, env={}).warnings)
+
+
 def test_topic_prefix_not_ending_with_station_id_warns() -> None:
     text = MINIMAL.replace("site/area/line/st-1", "site/area/line/other")
     assert any("does not end with the station id" in w for w in parse_config(text, env={}).warnings)

@@ -60,6 +60,7 @@ __all__ = [
     "PlaintextRemoteError",
     "StationConfig",
     "StationSection",
+    "ViewConfig",
     "WrenchConfig",
     "apply_env_overrides",
     "calibration_state",
@@ -342,6 +343,31 @@ class JournalConfig(_Section):
     list_limit: int = Field(default=20, ge=1, le=10_000)
 
 
+class ViewConfig(_Section):
+    """The station view: a read-only local web page with live updates (``clampd.daemon.view``).
+
+    Loopback by default: the page has no log-in, so it reaches the network only when the
+    bind address says so (a line lead's desktop), and ``check-config`` warns then.
+    """
+
+    enabled: bool = True
+    # An IP address literal (or "localhost"): a host name here would be resolved at start and
+    # could bind somewhere unexpected.
+    bind: str = "127.0.0.1"
+    # 8740: an unprivileged port outside the common web ports (our choice); 0 picks a free one.
+    port: int = Field(default=8740, ge=0, le=65535)
+
+    @pydantic.field_validator("bind")
+    @classmethod
+    def _valid_bind(cls, v: str) -> str:
+        if v == "localhost":
+            return "127.0.0.1"
+        try:
+            return str(ipaddress.ip_address(v))
+        except ValueError:
+            raise ValueError("must be an IP address such as 127.0.0.1 or 0.0.0.0") from None
+
+
 class StationConfig(_Section):
     """The whole station file."""
 
@@ -352,6 +378,7 @@ class StationConfig(_Section):
     cues: CuesConfig = CuesConfig()
     outbox: OutboxConfig = OutboxConfig()
     journal: JournalConfig = JournalConfig()
+    view: ViewConfig = ViewConfig()
 
     @pydantic.field_validator("wrench")
     @classmethod
@@ -571,6 +598,11 @@ def _warnings(
         warnings.append(
             f"station.topic_prefix {config.station.topic_prefix!r} does not end with the "
             f"station id {config.station.id!r}; broker ACLs keyed on the id will refuse it"
+        )
+    if config.view.enabled and not _is_loopback(config.view.bind):
+        warnings.append(
+            f"view.bind {config.view.bind}: the station view (read-only, no log-in) is "
+            "reachable from the network; bind 127.0.0.1 unless that network may see it"
         )
     if config.cues.output == "wav":
         warnings.append("cues.output = 'wav': cues are written to files, nobody hears them")
