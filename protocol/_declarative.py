@@ -550,6 +550,10 @@ def load_profile(source: str | os.PathLike[str]) -> DeclarativeProfile:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ProfileError(name, [("", f"not valid TOML: {exc}")]) from None
+    except RecursionError:
+        # tomllib recurses into nested arrays and inline tables: thousands of levels exhaust
+        # the stack instead of raising TOMLDecodeError.
+        raise ProfileError(name, [("", "not valid TOML: nested too deeply")]) from None
     return DeclarativeProfile(_validate(raw, name))
 
 
@@ -574,4 +578,8 @@ def load_builtin_profile(name: str) -> DeclarativeProfile:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ProfileError(name, [("", f"not valid TOML: {exc}")]) from None
+    except RecursionError:
+        # tomllib recurses into nested arrays and inline tables: thousands of levels exhaust
+        # the stack instead of raising TOMLDecodeError.
+        raise ProfileError(name, [("", "not valid TOML: nested too deeply")]) from None
     return DeclarativeProfile(_validate(raw, name))

@@ -646,6 +646,12 @@ def parse_config(
         raise ConfigError(
             [ConfigProblem(path="", message=f"not valid TOML: {exc}")], source
         ) from None
+    except RecursionError:
+        # tomllib reads nested arrays and inline tables recursively: a file nested some
+        # thousands deep exhausts the stack instead of raising TOMLDecodeError.
+        raise ConfigError(
+            [ConfigProblem(path="", message="not valid TOML: nested too deeply")], source
+        ) from None
     broker_raw = data.get("broker")
     file_has_password = isinstance(broker_raw, dict) and "password" in broker_raw
     apply_env_overrides(data, os.environ if env is None else env)
