@@ -30,6 +30,7 @@ from clampd.daemon.runtime import (
     OutboxError,
     OutboxFullError,
     OutboxInputError,
+    OutboxStorageError,
     OutboxUnknownIdError,
 )
 from clampd.daemon.runtime._outbox import SCHEMA_VERSION
@@ -281,6 +282,57 @@ def test_file_from_a_newer_clampd_is_refused_untouched(tmp_path: Path) -> None:
     raw = sqlite3.connect(path)
     assert raw.execute("PRAGMA user_version").fetchone()[0] == 99
     raw.close()
+
+
+def test_a_file_that_is_no_database_is_a_typed_error(tmp_path: Path) -> None:
+    # SQLite, "Result and Error Codes": SQLITE_NOTADB (26) for a file that is no database.
+    path = tmp_path / "o.db"
+    path.write_bytes(b"station log, not a database\n" * 200)
+    with pytest.raises(OutboxStorageError, match="cannot open"):
+        Outbox(path)
+    assert path.read_bytes() == b"station log, not a database\n" * 200
+
+
+def test_a_write_sqlite_refuses_is_typed_rolled_back_and_retryable(tmp_path: Path) -> None:
+    # A read-only SD card answers SQLITE_READONLY (8) to every write (SQLite, "Result and
+    # Error Codes"); PRAGMA query_only makes the real connection answer the same way.
+    with Outbox(tmp_path / "o.db") as ob:
+        assert _put(ob, 1)
+        ob._conn.execute("PRAGMA query_only = 1")
+        with pytest.raises(OutboxStorageError, match="readonly"):
+            _put(ob, 2)
+        with pytest.raises(OutboxStorageError):
+            ob.mark_sent(_id(1))
+        assert not ob._conn.in_transaction
+        ob._conn.execute("PRAGMA query_only = 0")
+        assert _put(ob, 2)  # the caller held the result and offers it again
+        assert [e.id for e in ob.pending()] == [_id(1), _id(2)]
+        assert ob.integrity_ok()
+
+
+def test_create_false_opens_only_an_existing_outbox_and_writes_nothing(tmp_path: Path) -> None:
+    missing = tmp_path / "typo.db"
+    with pytest.raises(OutboxError, match="no outbox"):
+        Outbox(missing, create=False)
+    assert not missing.exists()
+    empty = tmp_path / "empty.db"
+    empty.touch()
+    with pytest.raises(OutboxError, match="not an SQLite"):
+        Outbox(empty, create=False)
+    assert empty.stat().st_size == 0
+    foreign = tmp_path / "foreign.db"
+    raw = sqlite3.connect(foreign)
+    raw.execute("CREATE TABLE parts (id TEXT)")
+    raw.commit()
+    raw.close()
+    before = foreign.read_bytes()
+    with pytest.raises(OutboxError, match="not a clampd outbox"):
+        Outbox(foreign, create=False)
+    assert foreign.read_bytes() == before
+    with Outbox(tmp_path / "o.db") as ob:
+        _put(ob, 1)
+    with Outbox(tmp_path / "o.db", create=False) as ob:
+        assert [e.id for e in ob.pending()] == [_id(1)]
 
 
 def test_list_filters_for_the_journal(tmp_path: Path) -> None:

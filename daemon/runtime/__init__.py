@@ -72,6 +72,7 @@ from clampd.daemon.runtime._outbox import (
     OutboxFullError,
     OutboxInputError,
     OutboxStats,
+    OutboxStorageError,
     OutboxUnknownIdError,
 )
 from clampd.daemon.runtime._results import (
@@ -163,6 +164,7 @@ __all__ = [
     "OutboxInputError",
     "OutboxResultSink",
     "OutboxStats",
+    "OutboxStorageError",
     "OutboxUnknownIdError",
     "PlaintextRemoteError",
     "Publisher",

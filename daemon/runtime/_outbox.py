@@ -25,6 +25,10 @@ Invariants
   "PRAGMA synchronous": FULL syncs the WAL on every commit, so a commit survives a power
   loss). A failing write (disk full, size cap) rolls back and leaves the file intact.
 - Unsent rows are never deleted.
+- Every SQLite failure of opening or writing reaches the caller as an ``OutboxError``
+  (``OutboxStorageError`` unless a more precise one applies): a read-only or failing SD card
+  must let the wrench worker hold its result and retry, not end its task with an exception
+  type it cannot expect.
 
 Retention and size policy
 -------------------------
@@ -59,7 +63,7 @@ import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from types import TracebackType
-from typing import Any, Self, TypeVar
+from typing import Any, NoReturn, Self, TypeVar
 
 __all__ = [
     "DEFAULT_RETENTION_DAYS",
@@ -74,6 +78,7 @@ __all__ = [
     "OutboxFullError",
     "OutboxInputError",
     "OutboxStats",
+    "OutboxStorageError",
     "OutboxUnknownIdError",
 ]
 
@@ -100,6 +105,13 @@ class OutboxError(Exception):
 
 class OutboxInputError(OutboxError, ValueError):
     """The caller passed something the outbox cannot store (e.g. an id that is no UUID)."""
+
+
+class OutboxStorageError(OutboxError):
+    """SQLite could not open or write the file (not a database, read-only, I/O error, locked).
+
+    A write that fails this way was rolled back: nothing stored changed.
+    """
 
 
 class OutboxConflictError(OutboxError):
@@ -264,6 +276,27 @@ def _finished_text(finished_at: dt.datetime | str | None) -> str | None:
     return finished_at.astimezone(dt.UTC).isoformat(timespec="milliseconds")
 
 
+# The first 16 bytes of every SQLite 3 database file (SQLite, "Database File Format" §1.3.1).
+_SQLITE_HEADER = b"SQLite format 3\x00"
+
+
+def _check_existing(path: Path) -> None:
+    """Refuse, without writing, a path that holds no SQLite database (see ``create``)."""
+    try:
+        with path.open("rb") as f:
+            head = f.read(len(_SQLITE_HEADER))
+    except FileNotFoundError:
+        raise OutboxError(f"no outbox at {path}") from None
+    except OSError as exc:
+        raise OutboxStorageError(f"{path}: cannot read: {exc.strerror}") from exc
+    if head != _SQLITE_HEADER:
+        raise OutboxError(f"{path} is not a clampd outbox (not an SQLite database)")
+
+
+def _user_version(conn: sqlite3.Connection) -> int:
+    return int(conn.execute("PRAGMA user_version").fetchone()[0])
+
+
 def migrate(conn: sqlite3.Connection) -> int:
     """Bring the schema to ``SCHEMA_VERSION``; return the version found before.
 
@@ -271,7 +304,7 @@ def migrate(conn: sqlite3.Connection) -> int:
     mid-migration leaves the previous version intact. A file from a newer clampd raises
     ``OutboxError`` (we cannot know its meaning; refusing is safer than guessing).
     """
-    found = int(conn.execute("PRAGMA user_version").fetchone()[0])
+    found = _user_version(conn)
     if found > SCHEMA_VERSION:
         raise OutboxError(
             f"outbox schema version {found} is newer than this clampd understands "
@@ -297,7 +330,10 @@ class Outbox:
     ``max_page_count`` sets SQLite's hard page limit for this connection; it makes the
     file behave like a full disk when reached (used by tests to exercise SQLITE_FULL, and
     usable as a last-resort ceiling). ``clock`` returns UNIX seconds (injectable for
-    retention tests).
+    retention tests). ``create=False`` opens only an existing outbox and changes nothing
+    in any other file (the journal commands: a typo or a foreign database must not be
+    turned into an empty outbox). Raises ``OutboxStorageError`` when SQLite cannot open the
+    file and ``OutboxError`` for a file that is not (or not yet) an outbox.
     """
 
     def __init__(
@@ -308,6 +344,7 @@ class Outbox:
         size_cap_bytes: int = DEFAULT_SIZE_CAP_BYTES,
         max_page_count: int | None = None,
         clock: Callable[[], float] = time.time,
+        create: bool = True,
     ) -> None:
         if retention_days <= 0:
             raise OutboxInputError(f"retention_days must be > 0, got {retention_days}")
@@ -317,11 +354,19 @@ class Outbox:
         self.retention_days = retention_days
         self.size_cap_bytes = size_cap_bytes
         self._clock = clock
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        if create:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+        else:
+            _check_existing(self.path)
         # isolation_level=None: we issue BEGIN/COMMIT ourselves, so every transaction
         # boundary is visible in this file rather than implied by the sqlite3 module.
-        self._conn = sqlite3.connect(self.path, isolation_level=None, timeout=10.0)
         try:
+            self._conn = sqlite3.connect(self.path, isolation_level=None, timeout=10.0)
+        except sqlite3.Error as exc:
+            raise OutboxStorageError(f"{self.path}: cannot open: {exc}") from exc
+        try:
+            if not create and _user_version(self._conn) == 0:
+                raise OutboxError(f"{self.path} is an SQLite file but not a clampd outbox")
             mode = self._conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
             if str(mode).lower() != "wal":
                 raise OutboxError(f"{self.path}: cannot enable WAL (journal_mode={mode})")
@@ -331,6 +376,9 @@ class Outbox:
             if max_page_count is not None:
                 self._conn.execute(f"PRAGMA max_page_count = {int(max_page_count)}")
             self._page_size = int(self._conn.execute("PRAGMA page_size").fetchone()[0])
+        except sqlite3.Error as exc:
+            self._conn.close()
+            raise OutboxStorageError(f"{self.path}: cannot open as an outbox: {exc}") from exc
         except BaseException:
             self._conn.close()
             raise
@@ -579,7 +627,7 @@ class Outbox:
 
 
 class _Transaction:
-    """BEGIN IMMEDIATE ... COMMIT, rolled back on any error; SQLITE_FULL becomes typed."""
+    """BEGIN IMMEDIATE ... COMMIT, rolled back on any error; SQLite's errors become typed."""
 
     def __init__(self, outbox: Outbox) -> None:
         self._outbox = outbox
@@ -587,9 +635,8 @@ class _Transaction:
     def __enter__(self) -> None:
         try:
             self._outbox._conn.execute("BEGIN IMMEDIATE")
-        except sqlite3.OperationalError as exc:
+        except sqlite3.Error as exc:
             self._raise_typed(exc)
-            raise
 
     def __exit__(
         self,
@@ -606,16 +653,17 @@ class _Transaction:
                 if conn.in_transaction:
                     conn.execute("ROLLBACK")
                 self._raise_typed(commit_exc)
-                raise
         if conn.in_transaction:
             conn.execute("ROLLBACK")
         if isinstance(exc, sqlite3.Error):
             self._raise_typed(exc)
 
-    def _raise_typed(self, exc: sqlite3.Error) -> None:
+    def _raise_typed(self, exc: sqlite3.Error) -> NoReturn:
+        path = self._outbox.path
         if _is_full(exc):
             unsent = self._outbox.count_unsent()
-            raise OutboxDiskFullError(self._outbox.path, unsent) from exc
+            raise OutboxDiskFullError(path, unsent) from exc
+        raise OutboxStorageError(f"{path}: write failed and was rolled back: {exc}") from exc
 
 
 _T = TypeVar("_T")
