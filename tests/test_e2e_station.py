@@ -327,20 +327,27 @@ async def test_link_dropped_mid_rundown_is_nok_link_lost_and_the_link_comes_back
 # -- SIGKILL between the durable write and the publish ----------------------------------------
 
 
-@contextlib.contextmanager
-def notify_socket(path: Path) -> Any:
+@contextlib.asynccontextmanager
+async def notify_socket(path: Path) -> AsyncIterator[list[str]]:
+    """An sd_notify socket read continuously (a datagram queue holds only a few messages:
+    net.unix.max_dgram_qlen is 10 by default, and the watchdog pets would fill it)."""
+    got: list[str] = []
     with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM) as sock:
         sock.bind(str(path))
         sock.setblocking(False)
-        yield sock
+        loop = asyncio.get_running_loop()
 
+        async def read() -> None:
+            while True:
+                got.append((await loop.sock_recv(sock, 4096)).decode())
 
-def notifications(sock: socket.socket) -> list[str]:
-    out: list[str] = []
-    with contextlib.suppress(BlockingIOError):
-        while True:
-            out.append(sock.recv(4096).decode())
-    return out
+        task = asyncio.create_task(read())
+        try:
+            yield got
+        finally:
+            task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await task
 
 
 async def start_daemon(
@@ -399,8 +406,10 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
             addresses={w: p.address for w, p in rig.wrenches.items()},
             journal=journal,
         )
-        with notify_socket(tmp_path / "notify.sock") as sock:
+        async with notify_socket(tmp_path / "notify.sock") as notes:
             env["NOTIFY_SOCKET"] = str(tmp_path / "notify.sock")
+            # A 0.6 s watchdog: the daemon pets every 0.2 s while its loop turns (sd_notify(3)).
+            env["WATCHDOG_USEC"] = "600000"
             daemon = await start_daemon(config, hub, env, log)
             try:
                 async with MesStandIn(broker.host, broker.port, topic_prefix) as mes:
@@ -409,7 +418,8 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
                         await wait_for_status(
                             mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
                         )
-                    assert any(n.startswith("READY=1") for n in notifications(sock))
+                    assert any(n.startswith("READY=1") for n in notes)
+                    ready_before_kill = len([n for n in notes if n.startswith("READY=1")])
                     rss_kib = vm_rss_kib(daemon.pid)  # two wrenches connected and streaming
                     reply = await mes.select_program(
                         "guard-m8-torque", "DK48-2026-000903", ["guard-screw-1"], wrench_id="wr-11"
@@ -450,9 +460,10 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
                     if daemon.returncode is None:
                         daemon.kill()
                         await daemon.wait()
-            sent = notifications(sock)
-            assert any(n.startswith("READY=1") for n in sent)
-            assert "STOPPING=1" in sent
+            # Both runs said READY; the watchdog was petted; only the clean stop said STOPPING.
+            assert len([n for n in notes if n.startswith("READY=1")]) == ready_before_kill + 1
+            assert "WATCHDOG=1" in notes
+            assert notes.count("STOPPING=1") == 1
     # Resident memory of `clampd run` with two wrenches, for the report (-s shows it).
     print(f"\nclampd run VmRSS with two wrenches streaming: {rss_kib / 1024:.1f} MiB")
     assert rss_kib > 0
@@ -501,3 +512,40 @@ async def test_stop_during_a_rundown_lets_it_finish_flushes_and_says_offline(
     assert live.station.unsent_at_stop == 0
     status = await wait_for_status(mes, "status", lambda s: s.get("state") == "offline")
     assert status["state"] == "offline"
+
+
+# -- clampd run refuses bad input ---------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("text", "extra", "message"),
+    [
+        ("[station]\nid = 'st 1'\n", [], "station.id: String should match pattern"),
+        (None, ["--ble-hci", "carrier-pigeon:coop"], "--ble-hci carrier-pigeon:coop"),
+    ],
+    ids=["bad-config", "bad-hci-spec"],
+)
+def test_run_refuses_bad_input_with_one_line(
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    text: str | None,
+    extra: list[str],
+    message: str,
+) -> None:
+    from clampd.daemon.cli import main
+
+    config = tmp_path / "station.toml"
+    if text is None:
+        # A valid station whose broker is never reached: the HCI spec fails first.
+        text = SCENARIO.station_toml.replace(
+            'path = "journal/outbox.sqlite3"', f'path = "{tmp_path / "j.sqlite3"}"'
+        )
+    config.write_text(text)
+    assert main(["run", "--config", str(config), *extra]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("clampd run: ")
+    assert message in err
+    assert err.count("\n") == 1
+    if text.startswith("[station]"):
+        assert "(and 3 more)" in err  # name, topic_prefix and broker are missing too
+    assert not (tmp_path / "j.sqlite3").exists()  # nothing started, nothing written
