@@ -424,3 +424,31 @@ async def test_held_points_go_out_on_the_loop_timer_without_another_input() -> N
     body = json.loads(message.data)
     assert body["type"] == "points"
     assert body["points"] == [[None, 3.0]]
+
+
+def test_held_points_carry_the_stamp_of_the_oldest_one() -> None:
+    """Latency is measured from ``ts_ms``: a delta of held points must not look younger than
+    the sample that waited longest."""
+    clock, wall = FakeClock(), FakeClock()
+    hub = ViewHub(STATION, clock=clock, wall=lambda: wall.now, curve_interval_s=0.04)
+    show_station(hub, dict.fromkeys(POSITIONS, "pending"))
+    sub = hub.subscribe()
+    deltas(sub)
+    hub.on_engine_event(
+        WRENCH,
+        engine.RundownStarted(
+            index=0, t_s=0.0, torque_nm=1.0, gyro_bias_dps=0.0, program_id=PROGRAM.id
+        ),
+        0.0,
+    )
+    hub.on_samples(WRENCH, 0.0, 2.0, None)  # sent at once
+    stamps = []
+    for _ in range(3):  # held: 10 ms apart, inside the 40 ms interval
+        clock.now += 0.01
+        wall.now += 0.01
+        stamps.append(round(wall.now * 1000.0, 3))
+        hub.on_samples(WRENCH, 0.0, 3.0, None)
+    hub.flush()
+    last = [d for d in deltas(sub) if d["type"] == "points"][-1]
+    assert len(last["points"]) == 3
+    assert last["ts_ms"] == stamps[0]

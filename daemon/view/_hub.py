@@ -244,6 +244,7 @@ class _Rundown:
     epoch: int = 0  # bumps when the point list is rewritten (decimated or replaced)
     stored: bool = False  # its stored result has been shown
     final: list[float | None] | None = None  # [angle, torque] judged, once finished
+    pending_ms: float = 0.0  # wall stamp of the oldest point not yet sent
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -560,10 +561,10 @@ class ViewHub:
     def _stamp(self) -> None:
         self._stamp_ms = round(self._wall() * 1000.0, 3)
 
-    def _emit(self, body: dict[str, Any]) -> None:
+    def _emit(self, body: dict[str, Any], *, ts_ms: float | None = None) -> None:
         self._seq += 1
         body["seq"] = self._seq
-        body["ts_ms"] = self._stamp_ms
+        body["ts_ms"] = self._stamp_ms if ts_ms is None else ts_ms
         message = Message("delta", self._seq, json.dumps(body, separators=(",", ":")))
         self.messages_sent += 1
         for sub in self._subs:
@@ -588,6 +589,8 @@ class ViewHub:
     def _point(self, r: _Rundown, angle: float | None, torque: float) -> None:
         if not math.isfinite(torque) or (angle is not None and not math.isfinite(angle)):
             raise ViewError(f"{r.wrench_id}: curve point must be finite")
+        if r.sent == len(r.points):
+            r.pending_ms = self._stamp_ms
         r.points.append(_pt(angle, torque))
         r.torque_nm, r.angle_deg = torque, angle
         if len(r.points) > MAX_LIVE_POINTS:
@@ -619,7 +622,10 @@ class ViewHub:
                         "points": r.points[r.sent :],
                         "torque_nm": round(r.torque_nm, 4),
                         "angle_deg": _finite_or_none(r.angle_deg),
-                    }
+                    },
+                    # The oldest point's stamp: latency is counted from the sample that
+                    # waited longest, not from the newest.
+                    ts_ms=r.pending_ms,
                 )
                 r.sent = len(r.points)
                 sent_any = True

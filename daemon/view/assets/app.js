@@ -7,7 +7,7 @@
   const SVGNS = "http://www.w3.org/2000/svg";
   const RESULTS_SHOWN = 12;
   const LATENCY_KEEP = 5000;
-  const stats = { applied: 0, snapshots: 0, resyncs: 0, latencies: [], errors: 0 };
+  const stats = { applied: 0, snapshots: 0, resyncs: 0, latencies: [], byType: {}, errors: 0 };
   window.clampdView = stats;
 
   let state = null;
@@ -324,6 +324,9 @@
     const lat = performance.timeOrigin + performance.now() - msg.ts_ms;
     stats.latencies.push(lat);
     if (stats.latencies.length > LATENCY_KEEP) stats.latencies.shift();
+    const mine = (stats.byType[msg.type] = stats.byType[msg.type] || []);
+    mine.push(lat);
+    if (mine.length > LATENCY_KEEP) mine.shift();
   }
 
   function connect() {
