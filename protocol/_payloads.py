@@ -105,6 +105,12 @@ class Reason(enum.StrEnum):
     YIELD_EARLY = "yield_early"  # yield before the minimum torque or angle
     JOINT_RATE_LOW = "joint_rate_low"
     JOINT_RATE_HIGH = "joint_rate_high"
+    PREVAILING_TORQUE_LOW = "prevailing_torque_low"  # torque during the free rundown
+    PREVAILING_TORQUE_HIGH = "prevailing_torque_high"  # e.g. cross-threaded or galled
+    RUNDOWN_ANGLE_LOW = "rundown_angle_low"  # rotation from the first turn to snug
+    RUNDOWN_ANGLE_HIGH = "rundown_angle_high"
+    REHIT = "rehit"  # snug with almost no rotation: the joint was already tight
+    TORQUE_FELL_WHILE_TURNING = "torque_fell_while_turning"  # stripped thread, necking bolt
     DATA_GAP = "data_gap"
     LINK_LOST = "link_lost"
     ABORTED = "aborted"

@@ -32,7 +32,17 @@ from clampd.daemon.engine import (
 F = npt.NDArray[np.float64]
 
 PROGRAMS: list[dict[str, object]] = [
-    {"strategy": "torque", "target_torque": 30.0, "max_torque": 60.0},
+    {
+        "strategy": "torque",
+        "target_torque": 30.0,
+        "max_torque": 60.0,
+        # every error-proofing check on, so their figures are held sample-exact too
+        "prevailing_torque_window": [0.0, 3.0],
+        "rundown_angle_window": [5.0, 400.0],
+        "joint_rate_window": [0.5, 5.0],
+        "rehit_angle_max": 2.0,
+        "torque_drop": 0.2,
+    },
     {"strategy": "torque-angle", "target_angle": 25.0, "angle_window": [20, 40]},
     {"strategy": "yield", "slope_window": 1.5, "max_torque": 70.0},
     {"strategy": "torque-to-yield", "target_angle": 35.0, "monitor_yield": True},

@@ -6,7 +6,10 @@ to the engine in frames of ``--frame`` samples (the result does not depend on it
 is sample-exact). If the file ends while a rundown is still in progress, the rundown is ended
 the way a station would end it: by its timeout (NOK ``timeout``).
 
-Indices in the output are 0-based data rows; angles are degrees from snug. With several
+Indices in the output are 0-based data rows; angles are degrees from snug (the rundown angle:
+from the first turn to snug). The program's error-proofing checks (prevailing torque, rundown
+angle, joint rate, re-hit, torque falling while turning) are listed with their measured value,
+limits and verdict; a failed check's reason is among the rundown's reasons. With several
 rundowns in one file the first is printed (``rundowns`` says how many there were).
 
 Results support, never replace, the joint designer's specification, local codes and licensed
@@ -30,6 +33,8 @@ import numpy as np
 import numpy.typing as npt
 
 from clampd.daemon.engine import (
+    Check,
+    CheckOutcome,
     Engine,
     EngineSettings,
     EngineUsageError,
@@ -159,10 +164,41 @@ def _summary(res: RundownResult, count: int) -> str:
         lines.append(
             f"joint rate: {res.joint_rate_nm_per_deg:.4f} N·m/deg (r² {res.joint_rate_r2:.4f})"
         )
+    if res.prevailing_torque_nm is not None:
+        lines.append(f"prevailing torque: {format_torque(res.prevailing_torque_nm)}")
+    if res.rundown_angle_deg is not None:
+        lines.append(f"rundown angle (first turn to snug): {res.rundown_angle_deg:.1f}°")
+    if res.contact_to_snug_deg is not None:
+        lines.append(f"first contact to snug: {res.contact_to_snug_deg:.1f}°")
+    lines.extend(_check_line(c) for c in res.checks)
     if count > 1:
         lines.append(f"({count} rundowns in the file; the first is shown)")
     lines.append("Results support, never replace, the joint designer's specification.")
     return "\n".join(lines)
+
+
+# How each check's value and limits read (unit, and whether the limits form a window).
+_CHECK_UNITS = {
+    Check.PREVAILING_TORQUE: "N·m",
+    Check.RUNDOWN_ANGLE: "°",
+    Check.JOINT_RATE: "N·m/deg",
+    Check.REHIT: "°",
+    Check.TORQUE_DROP: "of peak",
+}
+
+
+def _check_line(c: CheckOutcome) -> str:
+    unit = _CHECK_UNITS[c.check]
+    verdict = {True: "pass", False: "FAIL", None: "not measured"}[c.passed]
+    value = "—" if c.value is None else f"{c.value:.4g} {unit}"
+    if c.check is Check.REHIT:
+        limits = f"re-hit at ≤ {c.low:.4g} {unit} to snug"
+    elif c.check is Check.TORQUE_DROP:
+        limits = f"fall ≥ {c.high:.4g} {unit} while turning"
+    else:
+        limits = f"window [{c.low:.4g}, {c.high:.4g}] {unit}"
+    where = "" if c.index is None else f" at row {c.index}"
+    return f"check {c.check.value}: {verdict}{where} ({value}; {limits})"
 
 
 def result_as_dict(res: RundownResult, count: int) -> dict[str, Any]:

@@ -14,6 +14,8 @@ from clampd.daemon.engine._errors import (
     SensorDataError,
 )
 from clampd.daemon.engine._events import (
+    Check,
+    CheckOutcome,
     CueFired,
     CueKind,
     CueRecord,
@@ -46,6 +48,8 @@ from clampd.daemon.engine._program import (
 from clampd.daemon.engine._settings import EngineSettings
 
 __all__ = [
+    "Check",
+    "CheckOutcome",
     "CueFired",
     "CueKind",
     "CueRecord",

@@ -84,6 +84,7 @@ from clampd.daemon.engine._events import (
 )
 from clampd.daemon.engine._machine import Input, State, next_state
 from clampd.daemon.engine._program import Program, StepKind, Strategy
+from clampd.daemon.engine._proofing import Limits, judge
 from clampd.daemon.engine._settings import EngineSettings
 
 __all__ = ["Engine"]
@@ -96,6 +97,10 @@ ArrayLike = float | FloatArray | npt.ArrayLike
 _INITIAL_CAPACITY = 8192
 # Samples kept while idle for the gyro bias estimate: 1 s at the profile's 10 kHz ceiling.
 _REST_CAPACITY = 16384
+# Idle run-in samples kept for error proofing (turning ones only): 65 s of turning at 1 kHz,
+# far beyond any free rundown; beyond it the oldest go (the rundown angle is then far too long
+# anyway).
+_RUNIN_CAPACITY = 65536
 # Least-squares fits need at least this many points (2 define a line, 3 say something about it).
 _MIN_FIT_POINTS = 3
 
@@ -160,19 +165,31 @@ class _Params:
         self.resume = s.resume_fraction
         self.max_gap = s.max_gap_s
         self.cue_window = s.cue_rate_window_s
+        self.proofing = Limits.of(p)
 
 
 class _Rundown:
     """Everything one rundown carries; local indices count from its first sample."""
 
-    def __init__(self, start_index: int, bias: float, t0: float, T0: float) -> None:
+    def __init__(
+        self,
+        start_index: int,
+        bias: float,
+        t0: float,
+        T0: float,
+        runin: tuple[FloatArray, FloatArray] | None = None,
+    ) -> None:
         cap = _INITIAL_CAPACITY
+        empty = np.empty(0)
+        # the idle run-in before the start: turning samples' torque, cumulative angle
+        self.runin_T, self.runin_th = runin if runin is not None else (empty, empty)
         self.start_index = start_index
         self.bias = bias
         self.t0, self.T0 = t0, T0
         self.t: FloatArray = np.empty(cap)
         self.T: FloatArray = np.empty(cap)
         self.th: FloatArray = np.empty(cap)
+        self.rc: FloatArray = np.empty(cap)  # bias-corrected rate (run-in angle before snug)
         self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
         self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
         self.n = 0
@@ -203,7 +220,7 @@ class _Rundown:
             return
         while cap < n:
             cap *= 2
-        for name in ("t", "T", "th", "turn"):
+        for name in ("t", "T", "th", "rc", "turn"):
             old = getattr(self, name)
             new = np.empty(cap, dtype=old.dtype)
             new[: self.n] = old[: self.n]
@@ -258,6 +275,12 @@ class Engine:
         self._r: _Rundown | None = None
         self._rest_t: FloatArray = np.empty(0)
         self._rest_r: FloatArray = np.empty(0)
+        # idle run-in (error proofing): per turning idle sample its torque, the trapezoid of the
+        # raw rate over the interval ending at it, and that interval; bias removed at the start
+        self._run_chunks: list[tuple[FloatArray, FloatArray, FloatArray]] = []
+        self._run_count = 0
+        self._run_prev: tuple[float, float] | None = None  # (t, raw rate) of the last idle sample
+        self._run_last_move = -math.inf  # time of the last idle sample not at rest
 
     # ----------------------------------------------------------------- read-only surface
     @property
@@ -460,23 +483,77 @@ class Engine:
         if not self._armed:
             pos = _first(start > T)
             if pos == m:
-                self._keep_rest(t, T, r)
+                self._keep_idle(t, T, r)
                 return None
             self._armed = True
         k = pos + _first(T[pos:] >= start)
-        self._keep_rest(t[:k], T[:k], r[:k])
+        self._keep_idle(t[:k], T[:k], r[:k])
         return None if k == m else k
 
-    def _keep_rest(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
-        """Keep the idle samples taken at rest (the only ones that show the gyro's bias)."""
+    def _keep_idle(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
+        """Keep the idle samples taken at rest (the only ones that show the gyro's bias) and
+        the turning ones of the run-in (error proofing, see ``_proofing.py``)."""
         if t.shape[0] == 0:
             return
         s = self._settings
         rest = (np.abs(r) < s.rest_rate_dps) & (np.abs(T) < s.rest_torque_nm)
+        self._keep_runin(t, T, r, rest)
         if not rest.any():
             return
         self._rest_t = np.concatenate((self._rest_t, t[rest]))[-_REST_CAPACITY:]
         self._rest_r = np.concatenate((self._rest_r, r[rest]))[-_REST_CAPACITY:]
+
+    def _keep_runin(self, t: FloatArray, T: FloatArray, r: FloatArray, rest: BoolArray) -> None:
+        m = t.shape[0]
+        s = self._settings
+        seed = np.empty(m + 1)
+        seed[0] = self._run_last_move
+        seed[1:] = np.where(rest, -np.inf, t)
+        last_move = np.maximum.accumulate(seed)[1:]
+        self._run_last_move = float(last_move[-1])
+        long_rest = rest & (t - last_move >= s.runin_rest_s)
+        a = 0
+        if long_rest.any():  # the wrench rested: a new run-in starts after the last such sample
+            a = m - int(long_rest[::-1].argmax())
+            self._run_chunks = []
+            self._run_count = 0
+            self._run_prev = (float(t[a - 1]), float(r[a - 1]))
+        if a < m:
+            prev = self._run_prev if self._run_prev is not None else (float(t[a]), float(r[a]))
+            tt = np.empty(m - a + 1)
+            tt[0] = prev[0]
+            tt[1:] = t[a:]
+            rr = np.empty(m - a + 1)
+            rr[0] = prev[1]
+            rr[1:] = r[a:]
+            dt = tt[1:] - tt[:-1]
+            moving = r[a:] > s.rest_rate_dps
+            if moving.any():
+                inc = (rr[1:] + rr[:-1]) * 0.5 * dt
+                self._run_chunks.append((T[a:][moving], inc[moving], dt[moving]))
+                self._run_count += int(moving.sum())
+                if self._run_count > _RUNIN_CAPACITY:
+                    kept = [
+                        np.concatenate([c[i] for c in self._run_chunks])[-_RUNIN_CAPACITY:]
+                        for i in range(3)
+                    ]
+                    self._run_chunks = [(kept[0], kept[1], kept[2])]
+                    self._run_count = _RUNIN_CAPACITY
+        self._run_prev = (float(t[-1]), float(r[-1]))
+
+    def _take_runin(self, bias: float) -> tuple[FloatArray, FloatArray]:
+        """The run-in so far as (torque, cumulative angle) per turning sample; starts afresh."""
+        if self._run_chunks:
+            T = np.concatenate([c[0] for c in self._run_chunks])
+            inc = np.concatenate([c[1] for c in self._run_chunks])
+            dt = np.concatenate([c[2] for c in self._run_chunks])
+            th = np.cumsum(np.maximum(inc - bias * dt, 0.0))
+        else:
+            T = th = np.empty(0)
+        self._run_chunks = []
+        self._run_count = 0
+        self._run_prev = None
+        return T, th
 
     def _start(self, index: int, t0: float, T0: float, events: list[Event]) -> None:
         s = self._settings
@@ -490,7 +567,7 @@ class Engine:
             if int(sel.sum()) >= s.bias_min_samples:
                 bias = float(np.mean(self._rest_r[sel]))
         self._state = next_state(self._state, Input.START)
-        self._r = _Rundown(index, bias, t0, T0)
+        self._r = _Rundown(index, bias, t0, T0, self._take_runin(bias))
         events.append(
             RundownStarted(
                 index=index, t_s=t0, torque_nm=T0, gyro_bias_dps=bias, program_id=self._program.id
@@ -557,6 +634,7 @@ class Engine:
         R.t[n0 : n0 + m] = t
         R.T[n0 : n0 + m] = T
         R.turn[n0 : n0 + m] = turn
+        R.rc[n0 : n0 + m] = rc
         if R.snug is None or R.snug >= n0 + m:
             R.th[n0 : n0 + m] = 0.0
             if P_.watch_yield:
@@ -981,6 +1059,21 @@ class Engine:
                     rate = sxy / sxx
                     r2 = sxy * sxy / (sxx * syy) if syy > 0.0 else 1.0
                     r2 = min(max(r2, 0.0), 1.0)
+        pr = judge(
+            P_.proofing,
+            runin_torque_nm=R.runin_T,
+            runin_angle_deg=R.runin_th,
+            t=R.t[:n],
+            T=T,
+            rc=R.rc[:n],
+            turn=R.turn[:n],
+            snug=None if snug is None else R.snug,
+            snug_torque_nm=P_.snug,
+            deflection_deg_per_nm=P_.defl,
+            joint_rate=rate,
+            start_index=R.start_index,
+        )
+        uniq = tuple(dict.fromkeys((*uniq, *pr.reasons)))
         res = RundownResult(
             status=Status.NOK if uniq else Status.OK,
             reasons=uniq,
@@ -1004,6 +1097,10 @@ class Engine:
             curve_t_s=R.t[:n].copy(),
             curve_torque_nm=T.copy(),
             curve_angle_deg=th.copy(),
+            prevailing_torque_nm=pr.prevailing_torque_nm,
+            rundown_angle_deg=pr.rundown_angle_deg,
+            contact_to_snug_deg=pr.contact_to_snug_deg,
+            checks=pr.checks,
         )
         self._state = next_state(self._state, inp)
         self._r = None

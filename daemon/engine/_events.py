@@ -21,6 +21,8 @@ import numpy.typing as npt
 from clampd.protocol._downsample import lttb_indices
 
 __all__ = [
+    "Check",
+    "CheckOutcome",
     "CueFired",
     "CueKind",
     "CueRecord",
@@ -66,6 +68,25 @@ class Reason(enum.StrEnum):
     YIELD_NOT_FOUND = "yield_not_found"
     SNUG_NOT_FOUND = "snug_not_found"
     ENGINE_ERROR = "engine_error"
+    # error proofing from the curve (see _proofing.py)
+    PREVAILING_TORQUE_LOW = "prevailing_torque_low"
+    PREVAILING_TORQUE_HIGH = "prevailing_torque_high"
+    RUNDOWN_ANGLE_LOW = "rundown_angle_low"
+    RUNDOWN_ANGLE_HIGH = "rundown_angle_high"
+    JOINT_RATE_LOW = "joint_rate_low"
+    JOINT_RATE_HIGH = "joint_rate_high"
+    REHIT = "rehit"
+    TORQUE_FELL_WHILE_TURNING = "torque_fell_while_turning"
+
+
+class Check(enum.StrEnum):
+    """The error-proofing checks a program can switch on (one outcome each per rundown)."""
+
+    PREVAILING_TORQUE = "prevailing_torque"  # torque while the fastener runs down freely
+    RUNDOWN_ANGLE = "rundown_angle"  # rotation from the first turn to snug
+    JOINT_RATE = "joint_rate"  # dT/dθ after snug
+    REHIT = "rehit"  # snug reached with almost no rotation: the joint was already tight
+    TORQUE_DROP = "torque_drop"  # torque fell while the fastener turned
 
 
 class StopTrigger(enum.StrEnum):
@@ -142,6 +163,41 @@ class YieldPoint:
             ),
             "yield point",
         )
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class CheckOutcome:
+    """One error-proofing check of a rundown: what was measured, against which limits.
+
+    ``passed`` is ``None`` when the rundown gave nothing to measure (no run-in before snug,
+    no joint-rate fit); such a check neither passes nor fails the rundown by itself, the
+    rundown's other reasons (``snug_not_found``, ``rehit``) say why. ``index`` is the sample
+    where the condition first held (torque drop), else ``None``. Units: N·m for prevailing
+    torque and torque drop (the torque it fell to), degrees for angles, N·m/deg for the rate.
+    """
+
+    check: Check
+    value: float | None
+    low: float | None
+    high: float | None
+    passed: bool | None
+    index: int | None = None
+
+    def __post_init__(self) -> None:
+        _check(self.value is None or math.isfinite(self.value), "check value")
+        _check(self.index is None or self.index >= 0, "check index")
+        _check(self.passed is None or self.value is not None, "check judged without a value")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready form (``clampd replay --json``)."""
+        return {
+            "check": self.check.value,
+            "value": self.value,
+            "low": self.low,
+            "high": self.high,
+            "passed": self.passed,
+            "index": self.index,
+        }
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -283,6 +339,12 @@ class RundownResult:
     curve_t_s: FloatArray = field(repr=False)
     curve_torque_nm: FloatArray = field(repr=False)
     curve_angle_deg: FloatArray = field(repr=False)
+    # Error proofing (``_proofing.py``): run-in figures and the outcome of every check the
+    # program switched on. ``None``: not measured (no run-in seen, or no snug).
+    prevailing_torque_nm: float | None = None
+    rundown_angle_deg: float | None = None
+    contact_to_snug_deg: float | None = None
+    checks: tuple[CheckOutcome, ...] = ()
 
     def __post_init__(self) -> None:
         _check((self.status is Status.OK) == (not self.reasons), "status vs reasons")
@@ -352,6 +414,10 @@ class RundownResult:
             "joint_rate_nm_per_deg": self.joint_rate_nm_per_deg,
             "joint_rate_r2": self.joint_rate_r2,
             "samples": int(self.curve_t_s.shape[0]),
+            "prevailing_torque_nm": self.prevailing_torque_nm,
+            "rundown_angle_deg": self.rundown_angle_deg,
+            "contact_to_snug_deg": self.contact_to_snug_deg,
+            "checks": [c.to_dict() for c in self.checks],
         }
 
 

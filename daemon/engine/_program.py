@@ -62,6 +62,7 @@ Angle = Annotated[float, _q(Kind.ANGLE)]
 Seconds = Annotated[float, _q(Kind.TIME)]
 TorqueWindow = Annotated[tuple[float, float], _window(Kind.TORQUE)]
 AngleWindow = Annotated[tuple[float, float], _window(Kind.ANGLE)]
+RateWindow = Annotated[tuple[float, float], _window(Kind.JOINT_RATE)]
 
 
 class Strategy(enum.StrEnum):
@@ -137,6 +138,20 @@ class Program(BaseModel):
     reaction_time_s: Seconds | None = Field(default=None, alias="reaction_time", ge=0)
     cue_latency_s: Seconds | None = Field(default=None, alias="cue_latency", ge=0)
     steps: tuple[Step, ...] = Field(default=(), alias="step")
+    # Error proofing from the curve (all optional, off when absent; see _proofing.py for the
+    # definitions of run-in, first contact and rundown angle). ``clampd plan`` proposes them.
+    prevailing_torque_window_nm: TorqueWindow | None = Field(
+        default=None, alias="prevailing_torque_window"
+    )
+    rundown_angle_window_deg: AngleWindow | None = Field(default=None, alias="rundown_angle_window")
+    joint_rate_window_nm_per_deg: RateWindow | None = Field(default=None, alias="joint_rate_window")
+    rehit_angle_max_deg: Angle | None = Field(default=None, alias="rehit_angle_max", gt=0)
+    # Torque falling this fraction below its running peak while the fastener turns (past snug).
+    torque_drop_fraction: float | None = Field(default=None, alias="torque_drop", gt=0, lt=1)
+    # First contact: torque rises above the prevailing level by this margin. Default: a quarter
+    # of the snug torque (our choice: well above sensor noise and the scatter of the prevailing
+    # torque of a plain nut, well below snug).
+    contact_margin_nm: Torque | None = Field(default=None, alias="contact_margin", gt=0)
 
     @model_validator(mode="after")
     def _consistent(self) -> Program:
@@ -161,6 +176,9 @@ class Program(BaseModel):
         for name, w in (
             ("torque_window", self.torque_window_nm),
             ("angle_window", self.angle_window_deg),
+            ("prevailing_torque_window", self.prevailing_torque_window_nm),
+            ("rundown_angle_window", self.rundown_angle_window_deg),
+            ("joint_rate_window", self.joint_rate_window_nm_per_deg),
         ):
             if w is not None and not 0.0 <= w[0] <= w[1]:
                 problems.append(f"{name}: must be [min, max] with 0 <= min <= max, got {list(w)}")
@@ -180,6 +198,13 @@ class Program(BaseModel):
         if problems:
             raise ValueError(" | ".join(problems))
         return self
+
+    @property
+    def contact_margin(self) -> float:
+        """Torque above the prevailing level that marks first contact, N·m."""
+        if self.contact_margin_nm is not None:
+            return self.contact_margin_nm
+        return 0.25 * self.snug_torque_nm
 
     @property
     def yield_min_angle(self) -> float:

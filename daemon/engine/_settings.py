@@ -61,6 +61,10 @@ class EngineSettings:
     # Rundown timeout when the program gives none: torque below release for this long ends the
     # rundown NOK (timeout). Our choice: longer than a re-grip between ratchet strokes.
     timeout_s: float = 5.0
+    # The run-in (free rundown counted for error proofing, see _proofing.py) starts afresh after
+    # the wrench has rested this long: a technician who lets go for a second has left the
+    # fastener. Our choice: regrips between ratchet strokes take a few tenths of a second.
+    runin_rest_s: float = 1.0
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -78,6 +82,7 @@ class EngineSettings:
             "max_gap_s",
             "cue_rate_window_s",
             "timeout_s",
+            "runin_rest_s",
         )
         for name in positive:
             if getattr(self, name) <= 0:

@@ -17,6 +17,15 @@ Windows (common practice, no source, unless said):
   widened by 20 % either side for the plastic onset the detector needs; the torque window
   spans the torques at yield of both corners, widened by 10 %.
 - max_torque (an over-torque stop) sits 10 % above the torque window.
+- error proofing (the engine's ``_proofing.py``): the joint-rate window spans
+  dT/dθ = (dMA/dF)·P/(360·(δS+δP)) at both friction corners (dMA/dF from the VDI 2230 torque
+  relation); the prevailing-torque window is 0 to 10 % of snug (a plain nut runs down almost
+  freely); a re-hit is snug within half the elastic angle from zero preload to the lowest snug
+  preload (a fresh joint must turn at least that far); the torque-drop check trips at a 20 %
+  fall; the rundown-angle window only when the thread length run down before the head seats
+  is given (``rundown_mm``): from its shortest run, to its longest plus the angle to the
+  highest snug preload plus 30° of seating. These are starting values: narrow the joint-rate
+  window from a run of known-good joints on the line.
 TOML is written by hand: the values are plain strings, numbers and two-element lists,
 and a writer dependency is not worth it for that.
 """
@@ -26,9 +35,12 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
+from typing import Any
 
 from clampd.daemon.planner._errors import PlannerError
 from clampd.daemon.planner._joint import JointPlan
+from clampd.daemon.planner._resilience import rotation_deg
+from clampd.daemon.planner._vdi2230 import torque_per_preload_mm
 
 __all__ = ["PROGRAM_KEYS", "ProgramProposal", "program_toml", "propose_program"]
 
@@ -36,6 +48,8 @@ PROGRAM_KEYS = frozenset(
     {
         "id", "name", "version", "strategy", "snug_torque", "target_torque", "target_angle",
         "yield_fraction", "torque_window", "angle_window", "max_torque",
+        "prevailing_torque_window", "rundown_angle_window", "joint_rate_window",
+        "rehit_angle_max", "torque_drop",
     }
 )  # fmt: skip
 
@@ -46,6 +60,11 @@ _ANGLE_TOL_MIN_DEG = 2.0
 _YIELD_ANGLE_WIDEN = 0.20
 _MAX_TORQUE_OVER = 0.10
 YIELD_FRACTION = 0.5
+# Error-proofing defaults, see the module docstring (common practice, no source; our choices).
+_PREVAILING_OF_SNUG = 0.10
+_REHIT_OF_SNUG_ANGLE = 0.5
+_TORQUE_DROP = 0.20
+_SEATING_DEG = 30.0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -62,6 +81,11 @@ class ProgramProposal:
     torque_window_nm: tuple[float, float]
     angle_window_deg: tuple[float, float]
     max_torque_nm: float
+    prevailing_torque_window_nm: tuple[float, float] | None = None
+    rundown_angle_window_deg: tuple[float, float] | None = None
+    joint_rate_window_nm_per_deg: tuple[float, float] | None = None
+    rehit_angle_max_deg: float | None = None
+    torque_drop_fraction: float | None = None
 
 
 def _program_id(plan: JointPlan, strategy: str) -> str:
@@ -69,8 +93,44 @@ def _program_id(plan: JointPlan, strategy: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]", "-", raw).lower()
 
 
-def propose_program(plan: JointPlan, strategy: str = "torque-angle") -> ProgramProposal:
-    """Derive a torque-angle or yield program from ``plan``; ``PlannerError`` otherwise."""
+def _proofing(plan: JointPlan, rundown_mm: tuple[float, float] | None) -> dict[str, Any]:
+    """The error-proofing keys of a proposal (see the module docstring)."""
+    delta = plan.bolt.total + plan.clamped.total
+    p = plan.thread.pitch_mm
+    rates = tuple(
+        torque_per_preload_mm(plan.thread, mu_g, mu_k, plan.dkm_mm) / 1000.0 * p / (360.0 * delta)
+        for mu_g, mu_k in zip(plan.mu_thread_range, plan.mu_head_range, strict=True)
+    )
+    snug_angle = rotation_deg(min(plan.snug_preload_n), plan.bolt.total, plan.clamped.total, p)
+    out: dict[str, Any] = {
+        "prevailing_torque_window_nm": (0.0, _PREVAILING_OF_SNUG * plan.snug_torque_nm),
+        "joint_rate_window_nm_per_deg": (min(rates), max(rates)),
+        "rehit_angle_max_deg": _REHIT_OF_SNUG_ANGLE * snug_angle,
+        "torque_drop_fraction": _TORQUE_DROP,
+    }
+    if rundown_mm is not None:
+        lo, hi = rundown_mm
+        if not (math.isfinite(lo) and math.isfinite(hi) and 0.0 <= lo <= hi):
+            raise PlannerError(
+                "rundown_mm", f"must be [min, max] with 0 <= min <= max, got {rundown_mm}"
+            )
+        top = rotation_deg(max(plan.snug_preload_n), plan.bolt.total, plan.clamped.total, p)
+        out["rundown_angle_window_deg"] = (lo * 360.0 / p, hi * 360.0 / p + top + _SEATING_DEG)
+    return out
+
+
+def propose_program(
+    plan: JointPlan,
+    strategy: str = "torque-angle",
+    *,
+    rundown_mm: tuple[float, float] | None = None,
+) -> ProgramProposal:
+    """Derive a torque-angle or yield program from ``plan``; ``PlannerError`` otherwise.
+
+    ``rundown_mm``: the thread length the wrench runs down before the head seats (shortest,
+    longest), when the assembly fixes it; it gives the rundown-angle window.
+    """
+    proofing = _proofing(plan, rundown_mm)
     name = (
         f"{plan.thread.name} {plan.material.name}, grip {plan.inputs.grip_mm:g} mm,"
         f" μG {plan.mu_thread_range[0]:g}–{plan.mu_thread_range[1]:g}"
@@ -94,6 +154,7 @@ def propose_program(plan: JointPlan, strategy: str = "torque-angle") -> ProgramP
             torque_window_nm=tw,
             angle_window_deg=(max(target - tol, 0.0), max(hi, float(target))),
             max_torque_nm=tw[1] * (1 + _MAX_TORQUE_OVER),
+            **proofing,
         )
     if strategy == "yield":
         a_lo, a_hi = plan.angle_to_yield_range_deg
@@ -110,6 +171,7 @@ def propose_program(plan: JointPlan, strategy: str = "torque-angle") -> ProgramP
             torque_window_nm=tw,
             angle_window_deg=(a_lo * (1 - _YIELD_ANGLE_WIDEN), a_hi * (1 + _YIELD_ANGLE_WIDEN)),
             max_torque_nm=tw[1] * (1 + _MAX_TORQUE_OVER),
+            **proofing,
         )
     raise PlannerError("strategy", f"can propose torque-angle or yield, not {strategy!r}")
 
@@ -166,6 +228,19 @@ def program_toml(plan: JointPlan, proposal: ProgramProposal) -> str:
         f"torque_window = [{_q(tw[0], 'N*m')}, {_q(tw[1], 'N*m')}]",
         f"angle_window = [{_q(aw[0], 'deg')}, {_q(aw[1], 'deg')}]",
         f"max_torque = {_q(proposal.max_torque_nm, 'N*m')}",
-        "",
     ]
+    if proposal.prevailing_torque_window_nm is not None:
+        pw = proposal.prevailing_torque_window_nm
+        lines.append(f"prevailing_torque_window = [{_q(pw[0], 'N*m')}, {_q(pw[1], 'N*m')}]")
+    if proposal.rundown_angle_window_deg is not None:
+        rw = proposal.rundown_angle_window_deg
+        lines.append(f"rundown_angle_window = [{_q(rw[0], 'deg')}, {_q(rw[1], 'deg')}]")
+    if proposal.joint_rate_window_nm_per_deg is not None:
+        jw = proposal.joint_rate_window_nm_per_deg
+        lines.append(f'joint_rate_window = ["{jw[0]:.4f} N*m/deg", "{jw[1]:.4f} N*m/deg"]')
+    if proposal.rehit_angle_max_deg is not None:
+        lines.append(f"rehit_angle_max = {_q(proposal.rehit_angle_max_deg, 'deg')}")
+    if proposal.torque_drop_fraction is not None:
+        lines.append(f"torque_drop = {proposal.torque_drop_fraction:g}")
+    lines.append("")
     return "\n".join(lines)
