@@ -560,6 +560,40 @@ def test_results_never_creates_a_missing_journal(
     assert not missing.exists()
 
 
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["results"],
+        ["results", "show", str(uuid.UUID(int=7))],
+        ["stats"],
+        ["plot", str(uuid.UUID(int=7)), "--out", "{tmp}/curve.png"],
+    ],
+)
+@pytest.mark.parametrize("kind", ["text", "empty", "foreign"])
+def test_journal_commands_refuse_a_file_that_is_no_journal_and_leave_it_alone(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], command: list[str], kind: str
+) -> None:
+    # "foreign" is an SQLite database of another program: it must not get an outbox schema.
+    path = tmp_path / "journal.db"
+    if kind == "text":
+        path.write_text("not a database\n")
+    elif kind == "empty":
+        path.touch()
+    else:
+        raw = sqlite3.connect(path)
+        raw.execute("CREATE TABLE parts (id TEXT)")
+        raw.commit()
+        raw.close()
+    before = path.read_bytes()
+    argv = [a.replace("{tmp}", str(tmp_path)) for a in command]
+    assert main([*argv, "--db", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1
+    assert "not a clampd outbox" in err
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["journal.db"]
+
+
 def test_results_finds_the_journal_through_the_station_config(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

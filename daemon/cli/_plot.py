@@ -24,8 +24,8 @@ from pathlib import Path
 
 from pydantic import ValidationError
 
-from clampd.daemon.runtime._config import ConfigError, OutboxConfig, load_config
-from clampd.daemon.runtime._outbox import Outbox, OutboxError
+from clampd.daemon.cli._journal import JournalError, add_journal_arguments, open_journal
+from clampd.daemon.runtime._outbox import OutboxError
 from clampd.protocol import RundownResult
 
 __all__ = ["add_arguments", "plot_result", "run"]
@@ -46,22 +46,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--out", type=Path, required=True, metavar="FILE.png", help="where to write the PNG"
     )
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument("--db", type=Path, help="journal file (the outbox database)")
-    where.add_argument("--config", type=Path, help="station config naming the journal")
+    add_journal_arguments(parser)
 
 
 def _fail(message: str) -> int:
     print(f"clampd plot: {message}", file=sys.stderr)
     return 2
-
-
-def _journal_path(args: argparse.Namespace) -> Path:
-    if args.db is not None:
-        return Path(args.db)
-    if args.config is not None:
-        return load_config(args.config, check_files=False).config.outbox.path
-    return OutboxConfig().path
 
 
 def run(args: argparse.Namespace) -> int:
@@ -74,14 +64,11 @@ def run(args: argparse.Namespace) -> int:
     if importlib.util.find_spec("matplotlib") is None:
         return _fail("plotting needs matplotlib (pip install 'clampd[plot]')")
     try:
-        path = _journal_path(args)
-    except ConfigError as exc:
-        first = exc.problems[0] if exc.problems else ""
-        return _fail(f"{args.config}: {first}")
-    if not path.is_file():
-        return _fail(f"no journal at {path}")
+        journal, path = open_journal(args)
+    except JournalError as exc:
+        return _fail(str(exc))
     try:
-        with Outbox(path) as journal:
+        with journal:
             entry = journal.get(args.result_id)
     except OutboxError as exc:
         return _fail(str(exc))

@@ -19,7 +19,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from clampd.daemon.runtime._config import ConfigError, OutboxConfig, load_config
+from clampd.daemon.cli._journal import JournalError, add_journal_arguments, open_journal
+from clampd.daemon.runtime._config import load_config
 from clampd.daemon.runtime._outbox import Entry, Outbox, OutboxError
 
 
@@ -29,9 +30,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "action", nargs="?", choices=("list", "show"), default="list", help="default: list"
     )
     parser.add_argument("result_id", nargs="?", metavar="ID", help="result id for 'show'")
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument("--db", type=Path, help="journal file (the outbox database)")
-    where.add_argument("--config", type=Path, help="station config naming the journal")
+    add_journal_arguments(parser)
     parser.add_argument("--json", action="store_true", help="machine-readable output")
     parser.add_argument("--limit", type=int, default=None, help="rows to list (newest first)")
     parser.add_argument("--oldest-first", action="store_true", help="list in append order")
@@ -77,14 +76,6 @@ def _payload(e: Entry) -> dict[str, Any]:
         return {"payload_base64": base64.b64encode(e.payload).decode("ascii")}
 
 
-def _journal_path(args: argparse.Namespace) -> Path:
-    if args.db is not None:
-        return Path(args.db)
-    if args.config is not None:
-        return load_config(args.config, check_files=False).config.outbox.path
-    return OutboxConfig().path
-
-
 def run(args: argparse.Namespace) -> int:
     """List or show results; 2 with a one-line error for bad input or a missing journal."""
     if args.action == "show" and not args.result_id:
@@ -94,14 +85,11 @@ def run(args: argparse.Namespace) -> int:
     if args.limit is not None and args.limit <= 0:
         return _fail("--limit must be a positive number")
     try:
-        path = _journal_path(args)
-    except ConfigError as exc:
-        first = exc.problems[0] if exc.problems else ""
-        return _fail(f"{args.config}: {first}")
-    if not path.is_file():
-        return _fail(f"no journal at {path}")
+        journal, path = open_journal(args)
+    except JournalError as exc:
+        return _fail(str(exc))
     try:
-        with Outbox(path) as journal:
+        with journal:
             if args.action == "show":
                 return _show(journal, args)
             return _list(journal, args, path)

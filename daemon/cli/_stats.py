@@ -27,6 +27,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
+from clampd.daemon.cli._journal import JournalError, add_journal_arguments, open_journal
 from clampd.daemon.quality import (
     ChartPoint,
     GroupSnapshot,
@@ -35,7 +36,6 @@ from clampd.daemon.quality import (
     QuantitySummary,
     TrackerSettings,
 )
-from clampd.daemon.runtime._config import ConfigError, OutboxConfig, load_config
 from clampd.daemon.runtime._outbox import Outbox, OutboxError
 from clampd.protocol import RundownResult
 
@@ -57,9 +57,7 @@ _MONITOR = MonitorSettings(history=_CLI_HISTORY)
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Options of ``clampd stats``."""
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument("--db", type=Path, help="journal file (the outbox database)")
-    where.add_argument("--config", type=Path, help="station config naming the journal")
+    add_journal_arguments(parser)
     parser.add_argument("--program", help="only results of this program id")
     parser.add_argument("--wrench", help="only results of this wrench id")
     parser.add_argument(
@@ -80,14 +78,6 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def _fail(message: str) -> int:
     print(f"clampd stats: {message}", file=sys.stderr)
     return 2
-
-
-def _journal_path(args: argparse.Namespace) -> Path:
-    if args.db is not None:
-        return Path(args.db)
-    if args.config is not None:
-        return load_config(args.config, check_files=False).config.outbox.path
-    return OutboxConfig().path
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -140,14 +130,11 @@ def run(args: argparse.Namespace) -> int:
         if importlib.util.find_spec("matplotlib") is None:
             return _fail("plotting needs matplotlib (pip install 'clampd[plot]')")
     try:
-        path = _journal_path(args)
-    except ConfigError as exc:
-        first = exc.problems[0] if exc.problems else ""
-        return _fail(f"{args.config}: {first}")
-    if not path.is_file():
-        return _fail(f"no journal at {path}")
+        journal, path = open_journal(args)
+    except JournalError as exc:
+        return _fail(str(exc))
     try:
-        with Outbox(path) as journal:
+        with journal:
             got = collect(journal, window=args.window, program=args.program, wrench=args.wrench)
     except OutboxError as exc:
         return _fail(str(exc))
