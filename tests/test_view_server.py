@@ -15,35 +15,9 @@ from collections.abc import AsyncIterator
 from typing import Any
 
 import pytest
-from view_support import POSITIONS, STATION, WRENCH, show_station
+from view_support import POSITIONS, STATION, WRENCH, get, raw, show_station
 
 from clampd.daemon.view import MAX_HEAD_BYTES, ViewHub, ViewServer, ViewServerError, load_assets
-
-Response = tuple[int, dict[str, str], bytes]
-
-
-async def raw(port: int, data: bytes) -> Response:
-    """Send ``data`` as is, read to EOF (the server closes: one request per connection)."""
-    reader, writer = await asyncio.open_connection("127.0.0.1", port)
-    writer.write(data)
-    await writer.drain()
-    blob = await asyncio.wait_for(reader.read(), 10)
-    writer.close()
-    with contextlib.suppress(ConnectionError):
-        await writer.wait_closed()
-    head, _, body = blob.partition(b"\r\n\r\n")
-    lines = head.decode("latin-1").split("\r\n")
-    status = int(lines[0].split(" ")[1])
-    headers = {}
-    for line in lines[1:]:
-        k, _, v = line.partition(":")
-        headers[k.strip().lower()] = v.strip()
-    return status, headers, body
-
-
-async def get(port: int, path: str, method: str = "GET", host: str | None = None) -> Response:
-    host = host if host is not None else f"127.0.0.1:{port}"
-    return await raw(port, f"{method} {path} HTTP/1.1\r\nHost: {host}\r\n\r\n".encode())
 
 
 class SseReader:

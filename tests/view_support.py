@@ -9,6 +9,7 @@ bg-12 tightening a bracket's four M10 screws; the wrench is "bg-12-w1".
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import dataclasses
 import datetime as dt
 import time
@@ -147,3 +148,32 @@ async def play(
     walls.append(time.time())
     hub.on_result(payload)
     return Played(result=finished, payload=payload, event_walls=walls)
+
+
+# -- HTTP over a raw socket (the server's tests and the service's) --------------------------
+
+Response = tuple[int, dict[str, str], bytes]
+
+
+async def raw(port: int, data: bytes) -> Response:
+    """Send ``data`` as is, read to EOF (the server closes: one request per connection)."""
+    reader, writer = await asyncio.open_connection("127.0.0.1", port)
+    writer.write(data)
+    await writer.drain()
+    blob = await asyncio.wait_for(reader.read(), 10)
+    writer.close()
+    with contextlib.suppress(ConnectionError):
+        await writer.wait_closed()
+    head, _, body = blob.partition(b"\r\n\r\n")
+    lines = head.decode("latin-1").split("\r\n")
+    status = int(lines[0].split(" ")[1])
+    headers = {}
+    for line in lines[1:]:
+        k, _, v = line.partition(":")
+        headers[k.strip().lower()] = v.strip()
+    return status, headers, body
+
+
+async def get(port: int, path: str, method: str = "GET", host: str | None = None) -> Response:
+    host = host if host is not None else f"127.0.0.1:{port}"
+    return await raw(port, f"{method} {path} HTTP/1.1\r\nHost: {host}\r\n\r\n".encode())

@@ -9,6 +9,8 @@ practice.
 
 from clampd.daemon.view._feeds import (
     BROKER_POLL_S,
+    BoardPort,
+    ResultSinkPort,
     ResultTee,
     StatusTee,
     follow_broker,
@@ -39,6 +41,7 @@ from clampd.daemon.view._server import (
     ViewServerError,
     load_assets,
 )
+from clampd.daemon.view._service import ViewService
 
 __all__ = [
     "BROKER_POLL_S",
@@ -51,9 +54,11 @@ __all__ = [
     "QUEUE_BOUND",
     "RECENT_RESULTS",
     "RESULT_POINTS",
+    "BoardPort",
     "JobView",
     "JointView",
     "Message",
+    "ResultSinkPort",
     "ResultTee",
     "StationView",
     "StatusTee",
@@ -62,6 +67,7 @@ __all__ = [
     "ViewHub",
     "ViewServer",
     "ViewServerError",
+    "ViewService",
     "follow_broker",
     "limits_of",
     "load_assets",

@@ -26,7 +26,15 @@ from clampd.protocol import LiveCue, LiveProgress, LiveSnug, LiveStop, RundownRe
 if TYPE_CHECKING:
     from clampd.daemon.runtime._station import StationState
 
-__all__ = ["BROKER_POLL_S", "ResultTee", "StatusTee", "follow_broker", "station_view_of"]
+__all__ = [
+    "BROKER_POLL_S",
+    "BoardPort",
+    "ResultSinkPort",
+    "ResultTee",
+    "StatusTee",
+    "follow_broker",
+    "station_view_of",
+]
 
 # The broker chip and the backlog on the page: a person glancing at it does not notice half a
 # second, and a backlog count costs one SQLite query in the outbox thread (our choice).
@@ -35,11 +43,15 @@ BROKER_POLL_S: Final = 0.5
 LiveEvent = LiveProgress | LiveCue | LiveSnug | LiveStop
 
 
-class _ResultSink(Protocol):
+class ResultSinkPort(Protocol):
+    """The runtime's ``ResultSink`` (durable put)."""
+
     async def put_result(self, payload: RundownResult) -> bool: ...
 
 
-class _Board(Protocol):
+class BoardPort(Protocol):
+    """The runtime's ``StatusSink`` and ``LiveSink`` (the MQTT status board)."""
+
     def offer_status(self, status: WrenchStatus) -> None: ...
 
     def publish_live(self, event: LiveEvent) -> None: ...
@@ -73,7 +85,7 @@ def station_view_of(state: StationState, *, name: str = "") -> StationView:
 class ResultTee:
     """A ``ResultSink``: durable put first (its errors propagate unchanged), then the view."""
 
-    def __init__(self, sink: _ResultSink, hub: ViewHub) -> None:
+    def __init__(self, sink: ResultSinkPort, hub: ViewHub) -> None:
         self._sink = sink
         self._hub = hub
 
@@ -87,7 +99,7 @@ class ResultTee:
 class StatusTee:
     """``StatusSink`` + ``LiveSink``: the MQTT board first, then the view; neither blocks."""
 
-    def __init__(self, board: _Board, hub: ViewHub) -> None:
+    def __init__(self, board: BoardPort, hub: ViewHub) -> None:
         self._board = board
         self._hub = hub
 
