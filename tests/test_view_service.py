@@ -5,13 +5,14 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import io
 import json
 from pathlib import Path
 
 from view_support import PART, POSITIONS, PROGRAM, STATION, WRENCH, get, play, trace
 
 from clampd.daemon.runtime import AsyncOutbox, OutboxResultSink, StationState
-from clampd.daemon.view import ViewHub, ViewService
+from clampd.daemon.view import ViewHub, ViewService, announce_view
 from clampd.protocol import Topics
 
 PREFIX = "tarnwick/bogie/line-1/bg-12"
@@ -77,6 +78,41 @@ async def test_a_view_that_cannot_listen_leaves_the_daemon_running(tmp_path: Pat
         assert second.failed is not None
         assert "cannot listen" in second.failed
         assert not second.ready.is_set()
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+
+
+class _Station:
+    """What ``announce_view`` reads of the supervisor's ``Station``."""
+
+    def __init__(self, view: ViewService | None) -> None:
+        self.view = view
+
+
+async def test_the_demo_extra_prints_the_pages_address_once_served() -> None:
+    out = io.StringIO()
+    async with announce_view(_Station(None), None, out=out) as lines:
+        assert lines == ["station view: off ([view] enabled = false)"]
+    view = ViewService(STATION)
+    online = asyncio.Event()
+
+    async def no_backlog() -> int:
+        return 0
+
+    task = asyncio.create_task(view.run(online=online.is_set, backlog=no_backlog))
+    try:
+        async with announce_view(_Station(view), None, out=out) as lines:
+            assert lines == [f"station view: {view.url}"]
+            assert view.url.startswith("http://127.0.0.1:")
+            assert not view.url.endswith(":0/")
+            assert out.getvalue() == f"station view: {view.url}\n"
+            assert (await get(view.server.port, "/"))[0] == 200
+        blocked = ViewService(STATION, port=view.server.port)
+        await blocked.run(online=online.is_set, backlog=no_backlog)
+        async with announce_view(_Station(blocked), None, out=out, wait_s=0.05) as lines:
+            assert lines[0].startswith("station view: not served (view: cannot listen")
     finally:
         task.cancel()
         with contextlib.suppress(asyncio.CancelledError):

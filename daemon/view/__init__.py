@@ -41,7 +41,7 @@ from clampd.daemon.view._server import (
     ViewServerError,
     load_assets,
 )
-from clampd.daemon.view._service import ViewService
+from clampd.daemon.view._service import HasView, ViewService, announce_view
 
 __all__ = [
     "BROKER_POLL_S",
@@ -55,6 +55,7 @@ __all__ = [
     "RECENT_RESULTS",
     "RESULT_POINTS",
     "BoardPort",
+    "HasView",
     "JobView",
     "JointView",
     "Message",
@@ -68,6 +69,7 @@ __all__ = [
     "ViewServer",
     "ViewServerError",
     "ViewService",
+    "announce_view",
     "follow_broker",
     "limits_of",
     "load_assets",

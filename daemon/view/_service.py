@@ -13,6 +13,8 @@ hands out the adapters that sit on the runtime's existing ports:
     tg.create_task(view.run(online=..., backlog=flusher.backlog), name="clampd.view")
     await view.ready.wait(); view.url                         # the page's address
 
+``announce_view`` is the ``clampd demo`` extra that prints that address.
+
 The view is optional: when it cannot listen (address in use, assets missing) ``run`` logs
 the reason and returns, and the daemon goes on without it — a station must tighten even when
 its screen cannot be served.
@@ -21,9 +23,11 @@ its screen cannot be served.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
-from collections.abc import Awaitable, Callable
-from typing import TYPE_CHECKING
+import sys
+from collections.abc import AsyncIterator, Awaitable, Callable
+from typing import TYPE_CHECKING, Protocol, TextIO
 
 from clampd.daemon.view._feeds import (
     BROKER_POLL_S,
@@ -40,7 +44,7 @@ from clampd.daemon.view._server import ViewServer, ViewServerError
 if TYPE_CHECKING:
     from clampd.daemon.runtime._station import StateChange, StationState
 
-__all__ = ["ViewService"]
+__all__ = ["HasView", "ViewService", "announce_view"]
 
 _log = logging.getLogger(__name__)
 
@@ -110,3 +114,34 @@ class ViewService:
             if self._unsubscribe is not None:
                 self._unsubscribe()
                 self._unsubscribe = None
+
+
+class HasView(Protocol):
+    """A station that may serve the view (``Station.view``)."""
+
+    @property
+    def view(self) -> ViewService | None:
+        """The station's view service, None when ``[view] enabled = false``."""
+        ...
+
+
+@contextlib.asynccontextmanager
+async def announce_view(
+    station: HasView, mes: object, *, out: TextIO | None = None, wait_s: float = 5.0
+) -> AsyncIterator[list[str]]:
+    """A ``clampd demo`` extra: print the page's address as soon as it is served, and give
+    the line for the closing report. ``mes`` is unused (the extra's signature)."""
+    del mes
+    view = station.view
+    if view is None:
+        yield ["station view: off ([view] enabled = false)"]
+        return
+    try:
+        async with asyncio.timeout(wait_s):
+            await view.ready.wait()
+    except TimeoutError:
+        yield [f"station view: not served ({view.failed or 'did not start'})"]
+        return
+    line = f"station view: {view.url}"
+    print(line, file=out if out is not None else sys.stdout, flush=True)
+    yield [line]
