@@ -66,6 +66,17 @@ PROGRAMS: dict[str, dict[str, Any]] = {
             {"kind": "angle", "target_angle": 500.0},
         ],
     },
+    # torque control with every error-proofing check on (their cost: the idle run-in kept and
+    # one pass over the kept samples at the end of the rundown)
+    "torque+proofing": {
+        "strategy": "torque",
+        "target_torque": 500.0,
+        "prevailing_torque_window": [0.0, 3.0],
+        "rundown_angle_window": [5.0, 400.0],
+        "joint_rate_window": [0.5, 5.0],
+        "rehit_angle_max": 2.0,
+        "torque_drop": 0.2,
+    },
 }
 
 

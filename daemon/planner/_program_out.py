@@ -19,8 +19,9 @@ Windows (common practice, no source, unless said):
 - max_torque (an over-torque stop) sits 10 % above the torque window.
 - error proofing (the engine's ``_proofing.py``): the joint-rate window spans
   dT/dθ = (dMA/dF)·P/(360·(δS+δP)) at both friction corners (dMA/dF from the VDI 2230 torque
-  relation); the prevailing-torque window is 0 to 10 % of snug (a plain nut runs down almost
-  freely); a re-hit is snug within half the elastic angle from zero preload to the lowest snug
+  relation), widened by 10 % for the slope fit and the resilience model; the
+  prevailing-torque window is 0 to 10 % of snug (a plain nut runs down almost freely);
+  a re-hit is snug within half the elastic angle from zero preload to the lowest snug
   preload (a fresh joint must turn at least that far); the torque-drop check trips at a 20 %
   fall; the rundown-angle window only when the thread length run down before the head seats
   is given (``rundown_mm``): from its shortest run, to its longest plus the angle to the
@@ -65,6 +66,9 @@ _PREVAILING_OF_SNUG = 0.10
 _REHIT_OF_SNUG_ANGLE = 0.5
 _TORQUE_DROP = 0.20
 _SEATING_DEG = 30.0
+# Joint-rate window widening: the engine's fit over the curve from snug reads a few % off the
+# elastic slope, and substitute-sleeve models of δP differ by ~20 % (a few % of the rate).
+_RATE_WIDEN = 0.10
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -104,7 +108,10 @@ def _proofing(plan: JointPlan, rundown_mm: tuple[float, float] | None) -> dict[s
     snug_angle = rotation_deg(min(plan.snug_preload_n), plan.bolt.total, plan.clamped.total, p)
     out: dict[str, Any] = {
         "prevailing_torque_window_nm": (0.0, _PREVAILING_OF_SNUG * plan.snug_torque_nm),
-        "joint_rate_window_nm_per_deg": (min(rates), max(rates)),
+        "joint_rate_window_nm_per_deg": (
+            min(rates) * (1.0 - _RATE_WIDEN),
+            max(rates) * (1.0 + _RATE_WIDEN),
+        ),
         "rehit_angle_max_deg": _REHIT_OF_SNUG_ANGLE * snug_angle,
         "torque_drop_fraction": _TORQUE_DROP,
     }
