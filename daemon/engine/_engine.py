@@ -45,6 +45,15 @@ slope is at or below ``yield_fraction`` × that maximum. A trailing window repor
 slope over its span, so on a smooth knee the detection lags the true crossing by roughly half
 the window.
 
+Error proofing
+--------------
+While idle, the turning samples of the run-in (the free rundown before torque reaches the start
+level) are kept with their raw-rate trapezoids; the rundown's start removes the gyro bias from
+them. Inside the rundown the bias-corrected rate is kept too. When the rundown ends,
+``_proofing.judge`` measures prevailing torque, rundown angle, first contact, joint rate and any
+torque fall while turning from these kept samples, and adds its reasons: one pass at the end,
+nothing in the per-sample path, and sample-exact like everything else (see ``_proofing.py``).
+
 Cueing
 ------
 The value driven to target (torque, or angle since the step began) is extrapolated linearly
