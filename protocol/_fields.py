@@ -20,6 +20,7 @@ from pydantic import AfterValidator, AwareDatetime, BaseModel, ConfigDict, Field
 
 __all__ = [
     "IDENT_PATTERN",
+    "SERIAL_PATTERN",
     "UUID7_PATTERN",
     "FiniteFloat",
     "Ident",
@@ -48,7 +49,8 @@ PartId = Annotated[str, StringConstraints(pattern=r"^[!-~]{1,128}$")]
 Text = Annotated[str, StringConstraints(min_length=1, max_length=500)]
 # A wrench's serial as its firmware reports it (the sensor profile's info record gives 16 ASCII
 # bytes; 32 leaves room for other sensors): printable ASCII, inner spaces allowed.
-Serial = Annotated[str, StringConstraints(pattern=r"^[!-~]([ -~]{0,30}[!-~])?$")]
+SERIAL_PATTERN = r"^[!-~]([ -~]{0,30}[!-~])?$"
+Serial = Annotated[str, StringConstraints(pattern=SERIAL_PATTERN)]
 Uuid7 = Annotated[str, StringConstraints(pattern=UUID7_PATTERN)]
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 

@@ -38,6 +38,7 @@ from clampd.protocol import (
     Judgement,
     Reason,
     Topics,
+    WrenchRef,
     json_schemas,
     new_uuid7,
 )
@@ -212,14 +213,25 @@ def test_every_engine_enum_member_has_a_published_counterpart() -> None:
         ("SIM-210-A", "SIM-210-A"),
         ("", "w-1"),  # blank
         (None, "w-1"),  # no info record (declarative profile)
-        ("has space", "w-1"),  # the contract allows printable ASCII without space
+        ("TW 00123", "TW 00123"),  # the contract (Serial) allows inner spaces
+        ("TW00123         ", "TW00123"),  # 16 bytes padded with spaces, not NULs
+        ("tab\there", "w-1"),  # control characters are not printable ASCII
+        ("X" * 32, "X" * 32),
         ("X" * 33, "w-1"),  # longer than 32
+        ("Zähler-1", "w-1"),  # not ASCII
     ],
 )
-def test_serials_the_contract_refuses_fall_back_to_the_wrench_id(
+def test_serials_follow_the_contract_and_refused_ones_fall_back_to_the_wrench_id(
     serial: str | None, expected: str
 ) -> None:
     assert safe_serial(serial, "w-1") == expected
+    # Whatever comes back, the published model takes it (never an unpublishable result).
+    ref = WrenchRef(
+        wrench_id="w-1",
+        serial=safe_serial(serial, "w-1"),
+        calibration=Calibration(state=CalibrationState.UNKNOWN, due_date=None),
+    )
+    assert ref.serial == expected
 
 
 async def test_outbox_sink_stores_the_exact_bytes_on_the_result_topic(

@@ -29,6 +29,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import math
+import re
 from typing import Final, Protocol
 
 import numpy as np
@@ -50,6 +51,7 @@ from clampd.protocol import (
     WrenchRef,
     YieldPoint,
 )
+from clampd.protocol._fields import SERIAL_PATTERN
 
 __all__ = [
     "REASONS",
@@ -93,7 +95,8 @@ _ENDING: Final[tuple[tuple[Reason, StopTrigger], ...]] = (
     (Reason.DATA_GAP, StopTrigger.FAULT),
 )
 
-_SERIAL_OK: Final = frozenset(chr(c) for c in range(0x21, 0x7F))
+# The contract's own rule for a serial, so the two cannot drift apart.
+_SERIAL_RE: Final = re.compile(SERIAL_PATTERN)
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -135,13 +138,17 @@ class ResultContext:
 
 
 def safe_serial(serial: str | None, fallback: str) -> str:
-    """A serial the contract accepts (1-32 printable ASCII, no space), else ``fallback``.
+    """A serial the contract accepts (1-32 printable ASCII, inner spaces allowed), else
+    ``fallback``.
 
     A wrench's serial comes off the air; a blank or odd one must not make its result
-    unpublishable, so the station's own wrench id stands in.
+    unpublishable, so the station's own wrench id stands in. Surrounding spaces are
+    padding (firmware that pads its 16 bytes with spaces instead of NULs), not part of the
+    serial, so they are dropped rather than costing the result its tool's serial.
     """
-    if serial and len(serial) <= 32 and all(c in _SERIAL_OK for c in serial):
-        return serial
+    text = None if serial is None else serial.strip(" ")
+    if text and _SERIAL_RE.fullmatch(text):
+        return text
     return fallback
 
 
