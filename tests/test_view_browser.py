@@ -21,9 +21,9 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import pytest
-from view_support import PART, POSITIONS, STATION, WRENCH, play, show_station, trace
+from view_support import PART, POSITIONS, PROGRAM, STATION, WRENCH, play, show_station, trace
 
-from clampd.daemon.view import ViewHub, ViewServer
+from clampd.daemon.view import ViewHub, ViewServer, station_view
 
 if TYPE_CHECKING:
     from playwright.async_api import ViewportSize
@@ -185,7 +185,7 @@ async def test_a_rundown_draws_live_and_its_result_appears(
         assert first is not None
         assert await first.get_attribute("data-id") == played.payload.id
         assert "OK" in (await first.text_content() or "")
-        assert f"{PART}/S1" in (await first.text_content() or "")
+        assert f"S1 {PART}" in (await first.text_content() or "")
         marks = await p.page.eval_on_selector_all(
             "#curve [data-mark]", "n => n.map(e => e.dataset.mark)"
         )
@@ -220,3 +220,38 @@ async def test_a_nok_rundown_is_shown_in_words_and_shape(
         assert await p.attr("#results li", "data-status") == "NOK"
         await p.page.screenshot(path=str(screenshots / "view-800x480-nok.png"))
         assert p.problems == []
+
+
+async def test_a_page_pinned_to_one_wrench_stays_on_it(tmp_path: Path) -> None:
+    """Two wrenches at one station: ``?wrench=ID`` keeps a screen on its own tool's joints and
+    verdict while the other tool works; the unpinned page follows the latest rundown."""
+    other = "bg-12-w2"
+    hub = ViewHub(STATION)
+    hub.on_station(
+        station_view(
+            STATION,
+            jobs=[
+                (WRENCH, PROGRAM, PART, dict.fromkeys(POSITIONS, "pending"), False),
+                (other, PROGRAM, PART, {"N1": "pending", "N2": "pending"}, False),
+            ],
+        )
+    )
+    hub.on_link(WRENCH, connected=True, battery_pct=70)
+    hub.on_link(other, connected=True, battery_pct=90)
+    async with (
+        ViewServer(hub) as server,
+        chromium(tmp_path / "a", f"{server.url}?wrench={other}") as pinned,
+        chromium(tmp_path / "b", server.url) as follows,
+    ):
+        await play(hub, trace(1), position="S1", speed=2.0)
+        await follows.page.wait_for_selector('#verdict[data-status="OK"]')
+        assert await follows.text("#wrench-focus") == f"wrench {WRENCH}"
+        # The pinned page saw the same messages and still shows its own wrench.
+        await pinned.page.wait_for_function("document.querySelectorAll('#results li').length === 1")
+        assert await pinned.text("#wrench-focus") == f"wrench {other}"
+        assert await pinned.attr("#verdict", "data-status") == "idle"
+        positions = await pinned.page.eval_on_selector_all("#joints li", DATASET.format("position"))
+        assert positions == ["N1", "N2"]
+        assert "pinned" in (await pinned.attr(f'#wrenches [data-wrench="{other}"]', "class") or "")
+        assert pinned.problems == []
+        assert follows.problems == []

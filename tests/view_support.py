@@ -96,6 +96,7 @@ async def play(
     position: str,
     realtime: bool = True,
     speed: float = 1.0,
+    wrench_id: str = WRENCH,
 ) -> Played:
     """Replay ``tr`` through a real Engine into ``hub``, pacing frames on the sensor clock."""
     eng = engine.Engine(PROGRAM, engine.EngineSettings(deflection_deg_per_nm=0.0))
@@ -118,11 +119,11 @@ async def play(
                 later.append(ev)
                 continue
             walls.append(time.time())
-            hub.on_engine_event(WRENCH, ev, host)
-        hub.on_samples(WRENCH, t, torque, eng.angle_deg)
+            hub.on_engine_event(wrench_id, ev, host)
+        hub.on_samples(wrench_id, t, torque, eng.angle_deg)
         for ev in later:
             walls.append(time.time())
-            hub.on_engine_event(WRENCH, ev, host)
+            hub.on_engine_event(wrench_id, ev, host)
             assert isinstance(ev, engine.RundownFinished)
             finished = ev.result
     if finished is None:
@@ -132,7 +133,7 @@ async def play(
         ResultContext(
             result_id=new_uuid7(),
             station_id=STATION,
-            wrench_id=WRENCH,
+            wrench_id=wrench_id,
             serial="SIM-BG12-1",
             calibration=Calibration(state=CalibrationState.OK, due_date=dt.date(2027, 8, 31)),
             program=PROGRAM,

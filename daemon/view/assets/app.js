@@ -10,6 +10,9 @@
   const stats = { applied: 0, snapshots: 0, resyncs: 0, latencies: [], byType: {}, errors: 0 };
   window.clampdView = stats;
 
+  // ?wrench=ID pins the page to one wrench (a station screen beside that tool); without it
+  // the page follows the wrench whose rundown began last.
+  const pinned = new URLSearchParams(location.search).get("wrench");
   let state = null;
   let lastSeq = -1;
   let curveDirty = true;
@@ -34,6 +37,7 @@
   // -- the picture -------------------------------------------------------------------------
   function focusId() {
     if (!state) return null;
+    if (pinned) return pinned;
     if (state.focus) return state.focus;
     const ids = Object.keys(state.wrenches);
     return ids.length ? ids[0] : null;
@@ -41,7 +45,7 @@
   function jobFor(wrenchId) {
     if (!state) return null;
     return state.jobs.find((j) => j.wrench_id === wrenchId) ||
-      state.jobs.find((j) => j.wrench_id === null) || state.jobs[0] || null;
+      state.jobs.find((j) => j.wrench_id === null) || null;
   }
 
   function apply(msg) {
@@ -113,13 +117,16 @@
     ul.replaceChildren();
     for (const w of Object.values(state.wrenches)) {
       const li = el("li", { class: "chip", "data-state": w.connected ? "up" : "down", "data-wrench": w.id });
+      if (w.id === pinned) li.classList.add("pinned");
       li.append(el("span", { class: "glyph", "aria-hidden": "true" }));
       const parts = [w.id, w.connected ? "" : "no link"];
       if (w.connected && w.battery_pct !== null) parts.push(`${w.battery_pct}%`);
       li.title = `wrench ${w.id}: ${w.connected ? "linked" : "no link"}` +
         (w.battery_pct !== null ? `, battery ${w.battery_pct}%` : "") +
         `, calibration ${words(w.calibration)}` + (w.calibration_due ? ` (due ${w.calibration_due})` : "");
-      li.append(el("span", { class: "text" }, parts.filter((x) => x).join(" ")));
+      const link = el("a", { href: w.id === pinned ? "?" : `?wrench=${encodeURIComponent(w.id)}`, class: "text" },
+        parts.filter((x) => x).join(" "));
+      li.append(link);
       if (w.calibration !== "ok") {
         const due = w.calibration_due ? ` ${w.calibration_due}` : "";
         li.append(el("span", { class: "warn" }, `cal ${words(w.calibration)}${due}`));
@@ -181,9 +188,10 @@
     const ol = $("results");
     ol.replaceChildren();
     for (const x of state.results) {
-      const li = el("li", { "data-status": x.status, "data-id": x.id });
+      const li = el("li", { "data-status": x.status, "data-id": x.id, title: `part ${x.part_id}, wrench ${x.wrench_id}` });
       li.append(el("span", { class: "st" }, `${x.status === "OK" ? "\u25CF" : "\u25A0"} ${x.status}`));
-      li.append(document.createTextNode(` ${x.part_id}/${x.joint_position}`));
+      li.append(document.createTextNode(` ${x.joint_position}`));
+      li.append(el("span", { class: "key" }, ` ${x.part_id}`));
       li.append(el("br"));
       const angle = x.final_angle_deg === null ? "" : ` · ${fmt(x.final_angle_deg, 0)}°`;
       const why = x.status === "OK" ? "" : ` · ${x.reasons.map(words).join(", ")}`;
