@@ -111,6 +111,19 @@ class JointPoint(NamedTuple):
     broken: bool
 
 
+class _Derived(NamedTuple):
+    """Constants of one joint that ``point`` needs on every call (computed once)."""
+
+    fracture_angle_deg: float
+    delta_mm_per_n: float
+    u_seat_mm: float
+    yield_preload_n: float
+    ultimate_preload_n: float
+    torque_per_newton_nm: float
+    hardening_mm: float
+    strip_u_mm: float | None  # advance past contact where the thread strips (None: never)
+
+
 class JointResponse(NamedTuple):
     """The state over an array of fastener angles."""
 
@@ -187,6 +200,9 @@ class JointModel:
     fracture_elongation_mm: float = 0.5  # plastic bolt elongation at fracture
     strip_preload_n: float | None = None  # thread strips at this preload (None: never)
     fault: Fault = Fault.NONE
+    # Derived constants, computed once in __post_init__: point() runs ~10 times per simulated
+    # sample inside the bench's root search, and recomputing them there doubled study times.
+    _k: _Derived = dataclasses.field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         _positive(
@@ -215,6 +231,29 @@ class JointModel:
             raise JointError("prevailing torque and its slope must be ≥ 0")
         if self.strip_preload_n is not None:
             _positive(strip_preload_n=self.strip_preload_n)
+        # frozen and slotted: functools.cached_property cannot be used, so set the field directly
+        object.__setattr__(self, "_k", self._derive())
+
+    def _derive(self) -> _Derived:
+        # the same expressions as the properties below, so cached and fresh values are identical
+        delta = self.bolt_resilience_mm_per_n + self.clamped_resilience_mm_per_n
+        u_seat = self.seating_angle_deg * self.pitch_mm / 360.0
+        strip_u: float | None = None
+        if self.strip_preload_n is not None:
+            f_strip = min(self.strip_preload_n, self.yield_preload_n)
+            strip_u = f_strip * delta + u_seat / 2.0
+            if f_strip * delta < u_seat / 2.0:  # strips inside the seating region
+                strip_u = math.sqrt(2.0 * u_seat * delta * f_strip)
+        return _Derived(
+            fracture_angle_deg=self.fracture_angle_deg,
+            delta_mm_per_n=delta,
+            u_seat_mm=u_seat,
+            yield_preload_n=self.yield_preload_n,
+            ultimate_preload_n=self.ultimate_preload_n,
+            torque_per_newton_nm=self.torque_per_newton_nm,
+            hardening_mm=self._hardening_mm,
+            strip_u_mm=strip_u,
+        )
 
     # -- geometry (ISO 68-1 basic profile) ------------------------------------------------
     @property
@@ -325,38 +364,30 @@ class JointModel:
         """Torque needed to keep turning, preload and flags at one fastener angle."""
         if not math.isfinite(angle_deg):
             raise JointError(f"angle must be finite, got {angle_deg!r}")
+        k = self._k
         mu_prev = self.prevailing_nm(angle_deg)
-        if angle_deg >= self.fracture_angle_deg:
+        if angle_deg >= k.fracture_angle_deg:
             return JointPoint(0.0, 0.0, True, True)
         u_contact = (angle_deg - self.contact_angle_deg) * self.pitch_mm / 360.0
         if u_contact <= 0.0:
             return JointPoint(mu_prev, 0.0, False, False)
-        u_seat = self.seating_angle_deg * self.pitch_mm / 360.0
-        delta = self.bolt_resilience_mm_per_n + self.clamped_resilience_mm_per_n
+        u_seat = k.u_seat_mm
+        delta = k.delta_mm_per_n
         if u_contact < u_seat:
             force = u_contact**2 / (2.0 * u_seat * delta)
         else:
             force = (u_contact - u_seat / 2.0) / delta
-        yielded = force > self.yield_preload_n
+        f_y, f_u = k.yield_preload_n, k.ultimate_preload_n
+        yielded = force > f_y
         if yielded:
-            a = (self.ultimate_preload_n - self.yield_preload_n) * delta
-            excess = (u_contact - u_seat / 2.0) - self.yield_preload_n * delta
-            b = a + self._hardening_mm + excess
+            a = (f_u - f_y) * delta
+            excess = (u_contact - u_seat / 2.0) - f_y * delta
+            b = a + k.hardening_mm + excess
             x = (b - math.sqrt(b * b - 4.0 * a * excess)) / (2.0 * a)
-            force = self.yield_preload_n + x * (self.ultimate_preload_n - self.yield_preload_n)
-        if self.strip_preload_n is not None and self._strips_before(angle_deg):
+            force = f_y + x * (f_u - f_y)
+        if k.strip_u_mm is not None and u_contact >= k.strip_u_mm:
             return JointPoint(mu_prev, 0.0, yielded, True)
-        return JointPoint(force * self.torque_per_newton_nm + mu_prev, force, yielded, False)
-
-    def _strips_before(self, angle_deg: float) -> bool:
-        assert self.strip_preload_n is not None
-        f_strip = min(self.strip_preload_n, self.yield_preload_n)
-        delta = self.bolt_resilience_mm_per_n + self.clamped_resilience_mm_per_n
-        u_seat = self.seating_angle_deg * self.pitch_mm / 360.0
-        u_strip = f_strip * delta + u_seat / 2.0
-        if f_strip * delta < u_seat / 2.0:  # strips inside the seating region
-            u_strip = math.sqrt(2.0 * u_seat * delta * f_strip)
-        return (angle_deg - self.contact_angle_deg) * self.pitch_mm / 360.0 >= u_strip
+        return JointPoint(force * k.torque_per_newton_nm + mu_prev, force, yielded, False)
 
     def torque_at(self, angle_deg: npt.ArrayLike) -> JointResponse:
         """The response over an array of fastener angles (any shape, same shape out)."""
