@@ -310,6 +310,45 @@ def test_a_write_sqlite_refuses_is_typed_rolled_back_and_retryable(tmp_path: Pat
         assert ob.integrity_ok()
 
 
+def _damaged(path: Path) -> None:
+    """An outbox whose table pages were overwritten (a failing SD card), header intact."""
+    with Outbox(path) as ob:
+        for n in range(200):
+            _put(ob, n, size=3000)
+        ob.checkpoint()
+    raw = sqlite3.connect(path)
+    page = raw.execute("PRAGMA page_size").fetchone()[0]
+    root = raw.execute("SELECT rootpage FROM sqlite_master WHERE name = 'results'").fetchone()[0]
+    raw.close()
+    with path.open("r+b") as f:  # pages count from 1 (SQLite, "Database File Format" §1.3)
+        f.seek((root - 1) * page)
+        f.write(b"\xff" * page)
+
+
+def test_a_damaged_file_gives_typed_read_errors(tmp_path: Path) -> None:
+    # SQLite, "Result and Error Codes": SQLITE_CORRUPT (11), "database disk image is malformed".
+    path = tmp_path / "o.db"
+    _damaged(path)
+    with Outbox(path) as ob:
+        with pytest.raises(OutboxStorageError, match="malformed"):
+            ob.pending(1000)
+        with pytest.raises(OutboxStorageError, match="malformed"):
+            list(ob.iter_all())
+        assert ob.integrity_ok() is False
+
+
+@pytest.mark.parametrize("command", [["stats"], ["results", "--oldest-first", "--limit", "500"]])
+def test_journal_commands_report_a_damaged_journal_in_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], command: list[str]
+) -> None:
+    path = tmp_path / "o.db"
+    _damaged(path)
+    assert main([*command, "--db", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1
+    assert "malformed" in err
+
+
 def test_create_false_opens_only_an_existing_outbox_and_writes_nothing(tmp_path: Path) -> None:
     missing = tmp_path / "typo.db"
     with pytest.raises(OutboxError, match="no outbox"):

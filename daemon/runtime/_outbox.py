@@ -25,7 +25,7 @@ Invariants
   "PRAGMA synchronous": FULL syncs the WAL on every commit, so a commit survives a power
   loss). A failing write (disk full, size cap) rolls back and leaves the file intact.
 - Unsent rows are never deleted.
-- Every SQLite failure of opening or writing reaches the caller as an ``OutboxError``
+- Every SQLite failure of opening, reading or writing reaches the caller as an ``OutboxError``
   (``OutboxStorageError`` unless a more precise one applies): a read-only or failing SD card
   must let the wrench worker hold its result and retry, not end its task with an exception
   type it cannot expect.
@@ -480,17 +480,17 @@ class Outbox:
         """Unsent results, oldest first (strict append order), at most ``limit``."""
         if limit <= 0:
             raise OutboxInputError(f"limit must be > 0, got {limit}")
-        rows = self._conn.execute(
+        rows = self._rows(
             f"SELECT {_COLUMNS} FROM results WHERE sent_at IS NULL ORDER BY seq LIMIT ?",
             (limit,),
-        ).fetchall()
+        )
         return [_row_to_entry(r) for r in rows]
 
     def get(self, result_id: str) -> Entry | None:
         """The stored result with this id, or None."""
         rid = _canonical_id(result_id)
-        row = self._conn.execute(f"SELECT {_COLUMNS} FROM results WHERE id = ?", (rid,)).fetchone()
-        return None if row is None else _row_to_entry(row)
+        rows = self._rows(f"SELECT {_COLUMNS} FROM results WHERE id = ?", (rid,))
+        return _row_to_entry(rows[0]) if rows else None
 
     def list(
         self,
@@ -529,24 +529,22 @@ class Outbox:
             params.append(finished_to)
         where = f"WHERE {' AND '.join(clauses)}" if clauses else ""
         order = "DESC" if newest_first else "ASC"
-        rows = self._conn.execute(
+        rows = self._rows(
             f"SELECT {_COLUMNS} FROM results {where} ORDER BY seq {order} LIMIT ?",
             (*params, limit),
-        ).fetchall()
+        )
         return [_row_to_entry(r) for r in rows]
 
     def count_unsent(self) -> int:
         """Number of results still waiting for the broker."""
-        return int(
-            self._conn.execute("SELECT count(*) FROM results WHERE sent_at IS NULL").fetchone()[0]
-        )
+        return int(self._rows("SELECT count(*) FROM results WHERE sent_at IS NULL")[0][0])
 
     def stats(self) -> OutboxStats:
         """Counts and sizes; ``used_bytes`` excludes free pages, which SQLite reuses."""
-        total, unsent, oldest = self._conn.execute(
+        total, unsent, oldest = self._rows(
             "SELECT count(*), sum(sent_at IS NULL),"
             " min(CASE WHEN sent_at IS NULL THEN created_at END) FROM results"
-        ).fetchone()
+        )[0]
         return OutboxStats(
             total=int(total),
             unsent=int(unsent or 0),
@@ -557,18 +555,24 @@ class Outbox:
         )
 
     def integrity_ok(self) -> bool:
-        """True when ``PRAGMA integrity_check`` reports ``ok``."""
-        rows = self._conn.execute("PRAGMA integrity_check").fetchall()
+        """True when ``PRAGMA integrity_check`` reports ``ok`` (False when the check itself
+        fails on a damaged file)."""
+        try:
+            rows = self._conn.execute("PRAGMA integrity_check").fetchall()
+        except sqlite3.DatabaseError as exc:
+            if isinstance(exc, sqlite3.ProgrammingError):
+                raise
+            return False
         return [r[0] for r in rows] == ["ok"]
 
     def iter_all(self, batch: int = 500) -> Iterator[Entry]:
         """Every stored row in append order, fetched in batches (export, audits, tests)."""
         last = 0
         while True:
-            rows = self._conn.execute(
+            rows = self._rows(
                 f"SELECT {_COLUMNS} FROM results WHERE seq > ? ORDER BY seq LIMIT ?",
                 (last, batch),
-            ).fetchall()
+            )
             if not rows:
                 return
             for row in rows:
@@ -577,17 +581,31 @@ class Outbox:
 
     def checkpoint(self) -> None:
         """Fold the WAL into the main file (e.g. before copying the file off the board)."""
-        self._conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        self._rows("PRAGMA wal_checkpoint(TRUNCATE)")
 
     # -- internals ------------------------------------------------------------------
+    def _rows(self, sql: str, params: tuple[Any, ...] = ()) -> builtins.list[tuple[Any, ...]]:
+        """One read; SQLite's errors (a damaged file, I/O) become ``OutboxStorageError``.
+
+        ``ProgrammingError`` (e.g. the connection used from a foreign thread) is our own
+        misuse and stays what it is.
+        """
+        try:
+            rows: builtins.list[tuple[Any, ...]] = self._conn.execute(sql, params).fetchall()
+        except sqlite3.ProgrammingError:
+            raise
+        except sqlite3.Error as exc:
+            raise OutboxStorageError(f"{self.path}: read failed: {exc}") from exc
+        return rows
+
     def _exists(self, rid: str) -> bool:
         return (
             self._conn.execute("SELECT 1 FROM results WHERE id = ?", (rid,)).fetchone() is not None
         )
 
     def _used_bytes(self) -> int:
-        pages = int(self._conn.execute("PRAGMA page_count").fetchone()[0])
-        free = int(self._conn.execute("PRAGMA freelist_count").fetchone()[0])
+        pages = int(self._rows("PRAGMA page_count")[0][0])
+        free = int(self._rows("PRAGMA freelist_count")[0][0])
         return (pages - free) * self._page_size
 
     def _file_bytes(self) -> int:
@@ -660,6 +678,8 @@ class _Transaction:
 
     def _raise_typed(self, exc: sqlite3.Error) -> NoReturn:
         path = self._outbox.path
+        if isinstance(exc, sqlite3.ProgrammingError):
+            raise exc  # our own misuse (e.g. a foreign thread), not the storage's
         if _is_full(exc):
             unsent = self._outbox.count_unsent()
             raise OutboxDiskFullError(path, unsent) from exc
