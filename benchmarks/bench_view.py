@@ -86,7 +86,9 @@ async def measure(rundowns: int = 4, speed: float = 1.0) -> dict[str, Any]:
             )
             page = context.pages[0] if context.pages else await context.new_page()
             await page.goto(server.url)
-            await page.wait_for_function("window.clampdView?.snapshots > 0")
+            # Polled from here: the page's CSP forbids the in-page eval wait_for_function uses.
+            while not await page.evaluate("window.clampdView?.snapshots > 0"):  # noqa: ASYNC110
+                await asyncio.sleep(0.02)
             served = dict(server.served)
             browser_bytes = await page.evaluate(
                 "performance.getEntriesByType('navigation').concat("

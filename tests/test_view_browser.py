@@ -84,6 +84,14 @@ class Page:
         page.on("pageerror", lambda e: self.problems.append(f"page error: {e}"))
         page.on("requestfailed", lambda r: self.problems.append(f"request failed: {r.url}"))
 
+    async def until(self, expression: str, timeout_s: float = 10.0) -> None:
+        """Poll ``expression`` from the test side. (Playwright's ``wait_for_function`` polls
+        with an in-page eval, which the page's Content-Security-Policy rightly forbids.)"""
+        async with asyncio.timeout(timeout_s):
+            # The page is another process: there is no event here to wait on but its answer.
+            while not await self.page.evaluate(expression):  # noqa: ASYNC110
+                await asyncio.sleep(0.02)
+
     async def attr(self, selector: str, name: str) -> str | None:
         value = await self.page.get_attribute(selector, name)
         return None if value is None else str(value)
@@ -108,9 +116,7 @@ async def chromium(tmp_path: Path, url: str) -> AsyncIterator[Page]:
         try:
             page = Page(context.pages[0] if context.pages else await context.new_page())
             await page.page.goto(url)
-            await page.page.wait_for_function(
-                "window.clampdView && window.clampdView.snapshots > 0"
-            )
+            await page.until("window.clampdView?.snapshots > 0")
             yield page
         finally:
             await context.close()
@@ -247,7 +253,7 @@ async def test_a_page_pinned_to_one_wrench_stays_on_it(tmp_path: Path) -> None:
         await follows.page.wait_for_selector('#verdict[data-status="OK"]')
         assert await follows.text("#wrench-focus") == f"wrench {WRENCH}"
         # The pinned page saw the same messages and still shows its own wrench.
-        await pinned.page.wait_for_function("document.querySelectorAll('#results li').length === 1")
+        await pinned.until("document.querySelectorAll('#results li').length === 1")
         assert await pinned.text("#wrench-focus") == f"wrench {other}"
         assert await pinned.attr("#verdict", "data-status") == "idle"
         positions = await pinned.page.eval_on_selector_all("#joints li", DATASET.format("position"))
