@@ -22,7 +22,7 @@ import datetime as dt
 import json
 import random
 import time
-from collections.abc import AsyncIterator, Callable, Iterable
+from collections.abc import AsyncIterator, Awaitable, Callable, Iterable
 from pathlib import Path
 from typing import Any
 
@@ -42,7 +42,8 @@ from clampd.daemon.runtime import (
     WrenchConfig,
     WrenchWorker,
 )
-from clampd.daemon.runtime._wrench import LiveEventPayload
+from clampd.daemon.runtime._ble import LinkItem
+from clampd.daemon.runtime._wrench import LiveEventPayload, WrenchLinkPort
 from clampd.protocol import (
     Judgement,
     LiveCue,
@@ -50,7 +51,10 @@ from clampd.protocol import (
     LiveSnug,
     RundownResult,
     Topics,
+    WrenchInfo,
     WrenchStatus,
+    decode_info,
+    encode_start,
     new_uuid7,
 )
 from clampd.simulators import (
@@ -502,3 +506,93 @@ async def test_with_nothing_selected_torque_gets_the_locked_cue_and_no_result(
     assert rig.worker.stats.rundowns == 0
     assert await rig.outbox.list() == []
     assert rig.worker.engine is None  # no program, no engine: nothing to judge against
+
+
+class FramesLink:
+    """The link port without a radio: the simulated sensor's v1 frames handed to the worker
+    one per turn of the event loop, as fast as it takes them; cue writes go back to the
+    sensor (where the simulated operator hears them). Only the radio is left out."""
+
+    address = "F0:00:00:00:02:10"
+    battery_pct: int | None = None
+
+    def __init__(self, sensor: VirtualWrenchSensor, after_frame: Callable[[], None]) -> None:
+        self._sensor = sensor
+        self._after_frame = after_frame
+        self.info: WrenchInfo | None = decode_info(sensor.info_value())
+        sensor.on_control(encode_start())
+
+    @property
+    def connected(self) -> bool:
+        return True
+
+    async def notifications(self, *, idle_s: float | None = None) -> AsyncIterator[LinkItem]:
+        while True:
+            data, _span = self._sensor.next_notification()
+            yield Notification(time.monotonic(), data)
+            await asyncio.sleep(0)  # one loop turn: the worker's results task runs here
+            self._after_frame()
+
+    async def write_control(self, data: bytes) -> None:
+        self._sensor.on_control(data)
+
+    async def connect_forever(
+        self, serve: Callable[[WrenchLinkPort], Awaitable[None]], *, rng: random.Random | None
+    ) -> None:
+        await serve(self)
+
+
+async def test_a_judged_result_counts_as_unstored_until_it_is_durable(tmp_path: Path) -> None:
+    # The next rundown's joint position depends on it: a rundown that starts while the
+    # previous result is not yet stored takes the position in force once that one is. So
+    # from the end of a rundown to its durable put the worker must never report zero
+    # unstored results, also while the result is being mapped to its payload (in a thread).
+    rng = np.random.default_rng(3)
+    bench = Bench(
+        [JointModel.sample(rng, QUICK_JOINTS)],
+        OperatorParams(steady_rate_dps=30.0, start_delay_s=0.2),
+        rng,
+        deflection_deg_per_nm=0.02,
+    )
+    sensor = VirtualWrenchSensor(SensorParams(serial="SIM-210-A"), rng, bench)
+    station = Station(program_from_mapping(TORQUE_PROGRAM), "GB-0042", ["bolt-1", "bolt-2"])
+    sinks = Sinks()
+    seen_rundown = False
+    after_finish: list[int] = []  # unstored_results at each frame between finish and store
+    stored = asyncio.Event()
+    worker: WrenchWorker | None = None
+
+    def after_frame() -> None:
+        nonlocal seen_rundown
+        assert worker is not None
+        if worker.stats.results_stored >= 1:
+            stored.set()
+        if worker.in_rundown:
+            seen_rundown = True
+        elif seen_rundown and worker.stats.results_stored == 0:
+            after_finish.append(worker.unstored_results)
+
+    async with AsyncOutbox(tmp_path / "outbox.sqlite3") as outbox:
+        config = wrench_config(FramesLink.address)
+        worker = WrenchWorker(
+            config,
+            station_id=STATION,
+            link=FramesLink(sensor, after_frame),
+            station=station,
+            results=OutboxResultSink(outbox, Topics(PREFIX)),
+            live=sinks,
+            status=sinks,
+            cues=NullCuePlayer(),
+        )
+        task = asyncio.create_task(worker.run(), name="clampd[w-210-a].link")
+        try:
+            async with asyncio.timeout(60):
+                await stored.wait()
+        finally:
+            task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await task
+        (entry,) = await outbox.list()
+    assert payload_of(entry).joint_position == "bolt-1"
+    assert after_finish, "the worker stored the result before another frame arrived"
+    assert set(after_finish) == {1}, after_finish

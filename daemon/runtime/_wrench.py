@@ -362,6 +362,8 @@ class WrenchWorker:
         self._unassigned_warned = False
         self._unstored: collections.deque[RundownResult] = collections.deque()
         self._finished: asyncio.Queue[_Finished] = asyncio.Queue()
+        # 1 while the results task maps a result it took off ``_finished`` (it is in neither).
+        self._mapping = 0
         self._cue_queue: asyncio.Queue[bytes] | None = None
         self._last_status: tuple[object, ...] | None = None
         self._battery: int | None = None
@@ -386,7 +388,7 @@ class WrenchWorker:
     @property
     def unstored_results(self) -> int:
         """Judged results not yet durable (being mapped, stored, or refused and held)."""
-        return len(self._unstored) + self._finished.qsize()
+        return len(self._unstored) + self._finished.qsize() + self._mapping
 
     async def run(self) -> None:
         """Serve the wrench forever (until cancelled): connect, stream, reconnect; store
@@ -697,6 +699,7 @@ class WrenchWorker:
         """
         while True:
             item = await self._finished.get()
+            self._mapping = 1
             rundown = item.rundown
             order = rundown.order
             if rundown.order_stale:
@@ -708,7 +711,9 @@ class WrenchWorker:
                         order, part_id=now.part_id, joint_position=now.joint_position
                     )
             # Off the loop: downsampling a long curve costs ~15 ms of Python (measured with
-            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues.
+            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues. The
+            # result still counts as unstored meanwhile (``_mapping``), so a rundown starting
+            # now takes the joint position in force once this one is stored.
             payload = await asyncio.to_thread(
                 build_result,
                 item.result,
@@ -738,6 +743,7 @@ class WrenchWorker:
                 payload.final_torque_nm,
             )
             self._unstored.append(payload)
+            self._mapping = 0
             while True:
                 if await self._store_unstored():
                     break
@@ -874,7 +880,6 @@ class WrenchWorker:
 
 
 _EMPTY: Final[npt.NDArray[np.float64]] = np.zeros(0)
-_AXES: Final[dict[str, Literal["x", "y", "z"]]] = {"x": "x", "y": "y", "z": "z"}
 
 
 def _at(torque: npt.NDArray[np.float64], index: int, base: int | None, fallback: float) -> float:
