@@ -138,3 +138,21 @@ def test_unknown_id_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str
     assert main(["plot", other, "--db", str(db), "--out", str(tmp_path / "x.png")]) == 2
     assert f"no result {other}" in capsys.readouterr().err
     assert not (tmp_path / "x.png").exists()
+
+
+def test_a_stored_row_that_is_no_valid_result_is_a_one_line_error(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # A damaged or foreign row: two fields break the contract (MQTT.md, result payload), so
+    # pydantic's own report would run over several lines.
+    broken = example()
+    broken["final_torque_nm"] = "plenty"
+    del broken["curve"]
+    db = journal_with(tmp_path, broken)
+    out = tmp_path / "x.png"
+    assert main(["plot", broken["id"], "--db", str(db), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert "not a valid result" in err
+    assert "2 problems" in err
+    assert not out.exists()

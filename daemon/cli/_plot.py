@@ -77,10 +77,20 @@ def run(args: argparse.Namespace) -> int:
     try:
         result = RundownResult.model_validate_json(entry.payload, strict=False)
     except ValidationError as exc:
-        return _fail(f"result {args.result_id} in the journal is not a valid result: {exc}")
+        return _fail(
+            f"result {args.result_id} in the journal is not a valid result: {_first_error(exc)}"
+        )
     plot_result(result, out)
     print(f"wrote {out}")
     return 0
+
+
+def _first_error(exc: ValidationError) -> str:
+    """pydantic's report in one line: the first problem and how many there are."""
+    first = exc.errors()[0]
+    where = ".".join(str(part) for part in first["loc"]) or "payload"
+    count = exc.error_count()
+    return f"{where}: {first['msg']}" + (f" ({count} problems)" if count > 1 else "")
 
 
 def plot_result(result: RundownResult, out: Path) -> None:
