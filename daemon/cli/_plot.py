@@ -18,13 +18,13 @@ Exit status: 0 written, 2 bad input (one line on stderr; nothing written).
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import sys
 from pathlib import Path
 
 from pydantic import ValidationError
 
 from clampd.daemon.cli._journal import JournalError, add_journal_arguments, open_journal
+from clampd.daemon.cli._png import png_output_problem
 from clampd.daemon.runtime._outbox import OutboxError
 from clampd.protocol import RundownResult
 
@@ -57,12 +57,9 @@ def _fail(message: str) -> int:
 def run(args: argparse.Namespace) -> int:
     """Read the result, draw it, write the PNG; 2 with a one-line error for bad input."""
     out: Path = args.out
-    if out.suffix.lower() != ".png":
-        return _fail(f"--out must name a .png file, got {out}")
-    if not out.parent.is_dir():
-        return _fail(f"--out: directory {out.parent} does not exist")
-    if importlib.util.find_spec("matplotlib") is None:
-        return _fail("plotting needs matplotlib (pip install 'clampd[plot]')")
+    problem = png_output_problem(out, "--out")
+    if problem is not None:
+        return _fail(problem)
     try:
         journal, path = open_journal(args)
     except JournalError as exc:

@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import importlib.util
 import json
 import sys
 from pathlib import Path
@@ -28,6 +27,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from clampd.daemon.cli._journal import JournalError, add_journal_arguments, open_journal
+from clampd.daemon.cli._png import png_output_problem
 from clampd.daemon.quality import (
     ChartPoint,
     GroupSnapshot,
@@ -122,13 +122,9 @@ def run(args: argparse.Namespace) -> int:
     if args.window < 2:
         return _fail(f"--window must be at least 2, got {args.window}")
     plot: Path | None = args.plot
-    if plot is not None:
-        if plot.suffix.lower() != ".png":
-            return _fail(f"--plot must name a .png file, got {plot}")
-        if not plot.parent.is_dir():
-            return _fail(f"--plot: directory {plot.parent} does not exist")
-        if importlib.util.find_spec("matplotlib") is None:
-            return _fail("plotting needs matplotlib (pip install 'clampd[plot]')")
+    problem = None if plot is None else png_output_problem(plot, "--plot")
+    if problem is not None:
+        return _fail(problem)
     try:
         journal, path = open_journal(args)
     except JournalError as exc:
