@@ -57,9 +57,19 @@ nothing in the per-sample path, and sample-exact like everything else (see ``_pr
 Cueing
 ------
 The value driven to target (torque, or angle since the step began) is extrapolated linearly
-with its rate over the trailing ``cue_rate_window_s``. The stop cue fires at the first sample
-where the value predicted at now + cue latency + reaction time reaches the target; the approach
-cue likewise with ``approach_lead_s`` more. A cue never fires later than the crossing itself.
+with its rate over the trailing ``cue_rate_window_s``. Only a turning sample predicts, and only
+once that window lies wholly inside its stroke after the stroke resumed fully (torque back at
+the previous stroke's level): during the wind-up of a new stroke torque climbs while the
+fastener stands still, and a rate taken across it would fire the stop cue far too early. The
+stop cue fires at the first sample where the value predicted at now + cue latency + reaction
+time reaches the aim point; the approach cue likewise with ``approach_lead_s`` more. The aim
+point is ``cue_aim`` of the way from the target to the upper limit of the window that judges
+the last step (a person's stop scatters around the aim; short of the target the rundown stays
+open). An angle step's approach cue may come before snug: the time to snug is extrapolated
+from the torque trend and the angle counted since the start gives the rate, so a fast pull on
+a short step still hears it in time to slow down; a stop cue never comes before snug. A stop
+cue is re-armed by the next stroke that starts after it (the technician let go short of the
+target and pulls again). No cue fires later than the crossing of the target itself.
 """
 
 from __future__ import annotations
@@ -174,6 +184,9 @@ class _Params:
         self.resume = s.resume_fraction
         self.max_gap = s.max_gap_s
         self.cue_window = s.cue_rate_window_s
+        self.aim = s.cue_aim if p.cue_aim is None else p.cue_aim
+        # an angle step driven from snug: its approach cue may come before snug
+        self.early = bool(self.steps) and self.steps[0].kind == _ANGLE
         self.proofing = Limits.of(p)
 
 
@@ -199,6 +212,7 @@ class _Rundown:
         self.T: FloatArray = np.empty(cap)
         self.th: FloatArray = np.empty(cap)
         self.rc: FloatArray = np.empty(cap)  # bias-corrected rate (run-in angle before snug)
+        self.pa: FloatArray = np.empty(cap)  # counted angle since the start, before snug only
         self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
         self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
         self.n = 0
@@ -208,14 +222,20 @@ class _Rundown:
         self.stroke_peak = 0.0
         self.resume_level = 0.0
         self.stroke_starts: list[int] = []
+        # per stroke: the level it resumed from, and its first sample at or above that level
+        # (``None`` until seen): from there on the fastener surely turns (cue prediction)
+        self.stroke_levels: list[float] = []
+        self.stroke_full: list[int | None] = []
         self.prev_t = self.prev_T = self.prev_rc = math.nan
         self.snug: int | None = None
         self.theta_last = 0.0
+        self.pa_last = 0.0
         self.last_active_t = t0
         # decision state
         self.step = 0
         self.step_base = 0.0
         self.fired: set[tuple[CueKind, int]] = set()
+        self.stop_cue_at: dict[int, int] = {}  # step -> local index of its latest stop cue
         self.cues: list[CueRecord] = []
         self.stop: StopPoint | None = None
         self.yield_point: YieldPoint | None = None
@@ -229,7 +249,7 @@ class _Rundown:
             return
         while cap < n:
             cap *= 2
-        for name in ("t", "T", "th", "rc", "turn"):
+        for name in ("t", "T", "th", "rc", "pa", "turn"):
             old = getattr(self, name)
             new = np.empty(cap, dtype=old.dtype)
             new[: self.n] = old[: self.n]
@@ -616,6 +636,8 @@ class Engine:
                 R.turning = True
                 R.stroke_peak = float(T[j])
                 R.stroke_starts.append(n0 + j)
+                R.stroke_levels.append(R.resume_level)
+                R.stroke_full.append(None)
                 p = j
         return out
 
@@ -636,6 +658,7 @@ class Engine:
         tt[1:] = t
         dt = tt[1:] - tt[:-1]
         turn = self._turning(R, rc, T, n0)
+        pre = P_.early and R.snug is None  # an early approach cue may need the angle to snug
         if R.snug is None:
             k = _first(P_.snug <= T)
             if k < m:
@@ -644,34 +667,27 @@ class Engine:
         R.T[n0 : n0 + m] = T
         R.turn[n0 : n0 + m] = turn
         R.rc[n0 : n0 + m] = rc
-        if R.snug is None or R.snug >= n0 + m:
+        counting = R.snug is not None and R.snug < n0 + m
+        inc = self._increments(R, dt, rc, T, turn) if counting or pre else None
+        if pre:
+            assert inc is not None
+            seed = np.empty(m + 1)
+            seed[0] = R.pa_last
+            seed[1:] = inc
+            pa = np.cumsum(seed)[1:]
+            R.pa[n0 : n0 + m] = pa
+            R.pa_last = float(pa[-1])
+        if not counting:
             R.th[n0 : n0 + m] = 0.0
             if P_.watch_yield:
                 R.P[:, n0 + 1 : n0 + m + 1] = R.P[:, n0 : n0 + 1]
         else:
+            assert R.snug is not None
+            assert inc is not None
             s = R.snug - n0  # may be negative: snug in an earlier frame
-            rr = np.empty(m + 1)
-            rr[0] = R.prev_rc
-            rr[1:] = rc
-            trap = (rr[1:] + rr[:-1]) * 0.5 * dt
-            if P_.defl != 0.0:
-                TT = np.empty(m + 1)
-                TT[0] = R.prev_T
-                TT[1:] = T
-                trap = trap - P_.defl * (TT[1:] - TT[:-1])
-            # an interval counts when the fastener turned at either end of it (the trapezoid
-            # of a stroke's last interval, rate falling to zero, is rotation too)
             acc = np.empty(m + 1)
             acc[0] = R.theta_last
-            if turn is True and R.turn_last:
-                np.maximum(trap, 0.0, out=acc[1:])
-            elif turn is False and not R.turn_last:
-                acc[1:] = 0.0
-            else:
-                tb = np.empty(m + 1, dtype=np.bool_)
-                tb[0] = R.turn_last
-                tb[1:] = turn
-                np.copyto(acc[1:], np.where(tb[1:] | tb[:-1], np.maximum(trap, 0.0), 0.0))
+            acc[1:] = inc
             if s >= 0:
                 acc[1 : s + 2] = 0.0  # angle is 0 at snug and counts from the next sample
             th = np.cumsum(acc)[1:]
@@ -691,6 +707,31 @@ class Engine:
         la = np.maximum.accumulate(la_in)[1:]
         R.last_active_t = float(la[-1])
         return dt, la
+
+    def _increments(
+        self, R: _Rundown, dt: FloatArray, rc: FloatArray, T: FloatArray, turn: BoolArray | bool
+    ) -> FloatArray:
+        """Counted angle per interval ending at each sample (see "Angle counting")."""
+        m = rc.shape[0]
+        rr = np.empty(m + 1)
+        rr[0] = R.prev_rc
+        rr[1:] = rc
+        trap = (rr[1:] + rr[:-1]) * 0.5 * dt
+        if self._p.defl != 0.0:
+            TT = np.empty(m + 1)
+            TT[0] = R.prev_T
+            TT[1:] = T
+            trap = trap - self._p.defl * (TT[1:] - TT[:-1])
+        # an interval counts when the fastener turned at either end of it (the trapezoid
+        # of a stroke's last interval, rate falling to zero, is rotation too)
+        if turn is True and R.turn_last:
+            return np.maximum(trap, 0.0)
+        if turn is False and not R.turn_last:
+            return np.zeros(m)
+        tb = np.empty(m + 1, dtype=np.bool_)
+        tb[0] = R.turn_last
+        tb[1:] = turn
+        return np.where(tb[1:] | tb[:-1], np.maximum(trap, 0.0), 0.0)
 
     @staticmethod
     def _prefix(
@@ -744,25 +785,99 @@ class Engine:
         M = np.maximum.accumulate(seed)[1:]
         return slope, M, valid
 
+    def _rate_window(
+        self, R: _Rundown, *, n0: int, p: int, m: int, t: FloatArray
+    ) -> tuple[npt.NDArray[np.intp], FloatArray, BoolArray]:
+        """Per sample of chunk[p:m]: where its rate window begins, how long it is, and whether
+        the sample may predict at all.
+
+        Only a turning sample predicts, and only when its whole window (``cue_rate_window_s``)
+        lies inside its stroke after the stroke resumed fully (torque back at the level where
+        the previous stroke ended). Before that the fastener stood still while torque wound
+        up; a rate taken across the wind-up predicts a crossing that is not coming, and a
+        stroke counts from ``resume_fraction`` of that level, so its first samples may still
+        be winding up. The price: no prediction in the first window of each stroke; a target
+        crossed within it still gets its stop cue at the crossing."""
+        a, b = n0 + p, n0 + m
+        tc = t[p:m]
+        j = np.searchsorted(R.t[:b], tc - self._p.cue_window, side="right") - 1
+        ok = R.turn[a:b].copy()
+        if R.stroke_starts:
+            ss = np.asarray(R.stroke_starts, dtype=np.intp)
+            full = np.empty(len(ss), dtype=np.intp)
+            for i, s0 in enumerate(R.stroke_starts):
+                f = R.stroke_full[i]
+                if f is None and s0 < b:
+                    k = s0 + _first(R.T[s0:b] >= R.stroke_levels[i])
+                    if k < b:
+                        f = R.stroke_full[i] = k
+                full[i] = b if f is None else f
+            w = np.searchsorted(ss, np.arange(a, b), side="right") - 1
+            f_of = np.where(w >= 0, full[np.maximum(w, 0)], 0)
+            ok &= j >= f_of
+        j = np.maximum(j, 0)
+        return j, tc - R.t[j], ok
+
     def _cue_masks(
         self, R: _Rundown, *, spec: _StepSpec, n0: int, p: int, m: int, t: FloatArray
-    ) -> tuple[FloatArray, FloatArray, FloatArray]:
-        """(value, rate, time) of the driven quantity over chunk[p:m] for prediction."""
-        P_ = self._p
-        tc = t[p:m]
-        j = np.searchsorted(R.t[: n0 + m], tc - P_.cue_window, side="right") - 1
-        j = np.maximum(j, 0)
+    ) -> tuple[FloatArray, FloatArray, BoolArray]:
+        """(value, rate, turning) of the driven quantity over chunk[p:m] for prediction; only
+        a turning sample may predict (see "Cueing")."""
+        j, dtj, ok = self._rate_window(R, n0=n0, p=p, m=m, t=t)
         if spec.kind == _TORQUE:
             v = R.T[n0 + p : n0 + m]
             vj = R.T[j]
         else:
             v = R.th[n0 + p : n0 + m] - R.step_base
             vj = R.th[j] - R.step_base
-        dtj = tc - R.t[j]
         rate = np.zeros(m - p)
         np.divide(v - vj, dtj, out=rate, where=dtj > 0.0)
         np.maximum(rate, 0.0, out=rate)
-        return v, rate, tc
+        return v, rate, ok
+
+    def _early_masks(
+        self, R: _Rundown, *, n0: int, p: int, m: int, t: FloatArray
+    ) -> tuple[FloatArray, FloatArray, FloatArray, BoolArray]:
+        """(torque, torque rate, counted angle rate, turning) over chunk[p:m], before snug."""
+        j, dtj, ok = self._rate_window(R, n0=n0, p=p, m=m, t=t)
+        Tk = R.T[n0 + p : n0 + m]
+        pos = dtj > 0.0
+        Tr = np.zeros(m - p)
+        np.divide(Tk - R.T[j], dtj, out=Tr, where=pos)
+        om = np.zeros(m - p)
+        np.divide(R.pa[n0 + p : n0 + m] - R.pa[j], dtj, out=om, where=pos)
+        return Tk, Tr, om, ok
+
+    def _aim(self, R: _Rundown, spec: _StepSpec) -> float:
+        """Where the stop cue aims for this step: ``cue_aim`` of the way from the target to the
+        upper limit of the window that judges it (last step only), inside that window."""
+        P_ = self._p
+        if P_.aim == 0.0 or R.step != len(P_.steps) - 1:
+            return spec.target
+        if spec.kind == _TORQUE:
+            w, base = P_.torque_window, 0.0
+        elif spec.kind == _ANGLE:
+            w, base = P_.angle_window, R.step_base
+        else:
+            return spec.target
+        if w is None or w[1] - base <= spec.target:
+            return spec.target
+        lo, hi = w[0] - base, w[1] - base
+        return min(max(spec.target + P_.aim * (hi - spec.target), lo), hi)
+
+    def _stop_armed_from(self, R: _Rundown, n0: int, p: int, m: int) -> int:
+        """First position in chunk[p:m] where this step's stop cue may fire, or ``m``.
+
+        Once fired it is re-armed by the next stroke that starts after it: the technician
+        let go short of the target and pulls again until the tool says done."""
+        last = R.stop_cue_at.get(R.step)
+        if last is None:
+            return p
+        ss = R.stroke_starts
+        w = int(np.searchsorted(np.asarray(ss, dtype=np.intp), last, side="right"))
+        if w == len(ss) or ss[w] >= n0 + m:
+            return m
+        return max(p, ss[w] - n0)
 
     def _active(self, t: FloatArray, T: FloatArray, r: FloatArray, events: list[Event]) -> int:
         R = self._r
@@ -810,7 +925,13 @@ class Engine:
             if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
                 cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
                 need_app = (CueKind.APPROACH, R.step) not in R.fired
-                need_stop = (CueKind.STOP, R.step) not in R.fired
+                stop_from = self._stop_armed_from(R, n0, p, m)
+                need_stop = stop_from < m
+                if state is State.RUNDOWN and spec.kind == _ANGLE and need_app:
+                    # an angle step's approach cue before snug (a stop cue never comes before)
+                    Tk, Tr, om, turn = self._early_masks(R, n0=n0, p=p, m=m, t=t)
+                    reach = om * (P_.h_approach * Tr - (P_.snug - Tk)) >= self._aim(R, spec) * Tr
+                    take(p + _first(turn & (Tr > 0.0) & reach), "cue_approach")
                 if cue_ok and (need_app or need_stop):
                     if spec.kind == _YIELD:
                         if state is State.TIGHTENING and need_app and slopes_possible:
@@ -825,13 +946,15 @@ class Engine:
                                 acond = judge & (slope <= P_.approach_fraction * M)
                                 take(p + _first(acond), "cue_approach")
                     else:
-                        v, rate, _ = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
+                        aim = self._aim(R, spec)
+                        v, rate, turn = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
                         if need_app:
-                            take(
-                                p + _first(v + rate * P_.h_approach >= spec.target), "cue_approach"
-                            )
+                            app = turn & (v + rate * P_.h_approach >= aim)
+                            take(p + _first(app), "cue_approach")
                         if need_stop:
-                            take(p + _first(v + rate * P_.h_stop >= spec.target), "cue_stop")
+                            q = stop_from - p
+                            stop = turn[q:] & (v[q:] + rate[q:] * P_.h_stop >= aim)
+                            take(stop_from + _first(stop), "cue_stop")
             if not R.over and t_max >= P_.max_torque:
                 take(p + _first(T[p:] >= P_.max_torque), "over")
             if state is State.TIGHTENING and spec is not None and spec.kind != _YIELD:
@@ -888,7 +1011,12 @@ class Engine:
                     assert spec is not None
                     kind = CueKind.APPROACH if what == "cue_approach" else CueKind.STOP
                     pred = tk
-                    if spec.kind != _YIELD:
+                    if state is State.RUNDOWN and spec.kind == _ANGLE:
+                        Tk, Tr, om, _ = self._early_masks(R, n0=n0, p=k, m=k + 1, t=t)
+                        if Tr[0] > 0.0 and om[0] > 0.0:
+                            to_snug = (P_.snug - float(Tk[0])) / float(Tr[0])
+                            pred = tk + max(to_snug, 0.0) + spec.target / float(om[0])
+                    elif spec.kind != _YIELD:
                         v, rate, _ = self._cue_masks(R, spec=spec, n0=n0, p=k, m=k + 1, t=t)
                         vk, rk = float(v[0]), float(rate[0])
                         if vk < spec.target and rk > 0.0:
@@ -917,7 +1045,9 @@ class Engine:
                         self._state = next_state(state, Input.OVER_TORQUE)
                 case "step":
                     assert spec is not None
-                    if (CueKind.STOP, R.step) not in R.fired:
+                    # no cue comes later than the crossing itself (late cues: predicted = actual)
+                    self._cue(R, kind=CueKind.APPROACH, gi=gi, tk=tk, pred=tk, events=events)
+                    if self._stop_armed_from(R, n0, k, k + 1) == k:
                         self._cue(R, kind=CueKind.STOP, gi=gi, tk=tk, pred=tk, events=events)
                     self._step_done(R, spec=spec, gi=gi, tk=tk, Tk=float(T[k]), events=events)
                 case _:
@@ -935,9 +1065,11 @@ class Engine:
         pred: float,
         events: list[Event],
     ) -> None:
-        if (kind, R.step) in R.fired:
+        if kind is CueKind.APPROACH and (kind, R.step) in R.fired:
             return
         R.fired.add((kind, R.step))
+        if kind is CueKind.STOP:
+            R.stop_cue_at[R.step] = gi - R.start_index
         R.cues.append(
             CueRecord(kind=kind, step=R.step, index=gi, t_s=tk, predicted_crossing_t_s=pred)
         )

@@ -137,6 +137,9 @@ class Program(BaseModel):
     approach_lead_s: Seconds | None = Field(default=None, alias="approach_lead", ge=0)
     reaction_time_s: Seconds | None = Field(default=None, alias="reaction_time", ge=0)
     cue_latency_s: Seconds | None = Field(default=None, alias="cue_latency", ge=0)
+    # Where the stop cue aims inside the window, as a fraction from the target to the window's
+    # upper limit (None: the station's setting, EngineSettings.cue_aim).
+    cue_aim: float | None = Field(default=None, alias="cue_aim", ge=0, le=1)
     steps: tuple[Step, ...] = Field(default=(), alias="step")
     # Error proofing from the curve (all optional, off when absent; see _proofing.py for the
     # definitions of run-in, first contact and rundown angle). ``clampd plan`` proposes them.

@@ -54,6 +54,12 @@ class EngineSettings:
     # Rate of change for the cue prediction is taken over this trailing window (noise vs lag),
     # our choice: 50 ms is ~2 frames at 1 kHz.
     cue_rate_window_s: float = 0.05
+    # The stop cue aims this fraction of the way from the target to the upper limit of the
+    # window that judges the last step (clipped to it; 0 aims at the target itself). A person
+    # stops a reaction time after the cue with a scatter of about ±20 % of it, and stopping
+    # short leaves the rundown open (NOK timeout) while a small overrun stays OK; see
+    # _AIM_EVIDENCE below for the value chosen from the cue study.
+    cue_aim: float = 0.2
     # A new ratchet stroke counts angle only once torque is back to this fraction of the level
     # where the previous stroke ended (the fastener does not turn before). Common practice, no
     # source; 0.98 leaves 2 % of the wind-up deflection counted, see tests/test_engine_angle.py.
@@ -99,5 +105,7 @@ class EngineSettings:
             raise EngineUsageError(
                 f"setting resume_fraction must be in (0, 1], got {self.resume_fraction!r}"
             )
+        if not 0.0 <= self.cue_aim <= 1.0:
+            raise EngineUsageError(f"setting cue_aim must be in [0, 1], got {self.cue_aim!r}")
         if self.bias_min_samples < 1:
             raise EngineUsageError("setting bias_min_samples must be >= 1")
