@@ -116,6 +116,8 @@ ArrayLike = float | FloatArray | npt.ArrayLike
 _INITIAL_CAPACITY = 8192
 # Samples kept while idle for the gyro bias estimate: 1 s at the profile's 10 kHz ceiling.
 _REST_CAPACITY = 16384
+# Motion onsets kept for the bias guard: far more than fit in the rest samples kept.
+_ONSET_CAPACITY = 4096
 # Idle run-in samples kept for error proofing (turning ones only): 65 s of turning at 1 kHz,
 # far beyond any free rundown; beyond it the oldest go (the rundown angle is then far too long
 # anyway).
@@ -304,6 +306,13 @@ class Engine:
         self._r: _Rundown | None = None
         self._rest_t: FloatArray = np.empty(0)
         self._rest_r: FloatArray = np.empty(0)
+        # per kept rest sample, the time of the last idle sample in motion before it; and the
+        # times motion began (an idle sample in motion after one at rest): the bias estimate
+        # leaves out rest samples close to either (see ``rest_guard_s``)
+        self._rest_lm: FloatArray = np.empty(0)
+        self._onsets: FloatArray = np.empty(0)
+        self._idle_last_move = -math.inf
+        self._idle_prev_rest = True
         # idle run-in (error proofing): per turning idle sample its torque, the trapezoid of the
         # raw rate over the interval ending at it, and that interval; bias removed at the start
         self._run_chunks: list[tuple[FloatArray, FloatArray, FloatArray]] = []
@@ -527,10 +536,24 @@ class Engine:
         s = self._settings
         rest = (np.abs(r) < s.rest_rate_dps) & (np.abs(T) < s.rest_torque_nm)
         self._keep_runin(t, T, r, rest)
+        m = t.shape[0]
+        prev = np.empty(m + 1, dtype=np.bool_)
+        prev[0] = self._idle_prev_rest
+        prev[1:] = rest
+        onset = ~rest & prev[:-1]
+        if onset.any():
+            self._onsets = np.concatenate((self._onsets, t[onset]))[-_ONSET_CAPACITY:]
+        self._idle_prev_rest = bool(rest[-1])
+        seed = np.empty(m + 1)
+        seed[0] = self._idle_last_move
+        seed[1:] = np.where(rest, -np.inf, t)
+        last_move = np.maximum.accumulate(seed)[1:]
+        self._idle_last_move = float(last_move[-1])
         if not rest.any():
             return
         self._rest_t = np.concatenate((self._rest_t, t[rest]))[-_REST_CAPACITY:]
         self._rest_r = np.concatenate((self._rest_r, r[rest]))[-_REST_CAPACITY:]
+        self._rest_lm = np.concatenate((self._rest_lm, last_move[rest]))[-_REST_CAPACITY:]
 
     def _keep_runin(self, t: FloatArray, T: FloatArray, r: FloatArray, rest: BoolArray) -> None:
         m = t.shape[0]
@@ -587,14 +610,21 @@ class Engine:
     def _start(self, index: int, t0: float, T0: float, events: list[Event]) -> None:
         s = self._settings
         bias = 0.0
-        if self._rest_t.shape[0]:
-            # the latest stretch of rest, however long the free run-in since (up to a max age)
-            newest = float(self._rest_t[-1])
-            sel = (self._rest_t >= newest - s.bias_window_s) & (
-                self._rest_t >= t0 - s.bias_max_age_s
-            )
-            if int(sel.sum()) >= s.bias_min_samples:
-                bias = float(np.mean(self._rest_r[sel]))
+        rt = self._rest_t
+        if rt.shape[0]:
+            # Rest samples within rest_guard_s of motion (before it begins, after it ends, or
+            # before this start) are left out: the hand's rate passes through the rest
+            # threshold there, and those samples would bias the estimate toward the motion.
+            onsets = np.append(self._onsets, t0)
+            nxt = onsets[np.minimum(np.searchsorted(onsets, rt, side="right"), len(onsets) - 1)]
+            good = (nxt - rt >= s.rest_guard_s) & (rt - self._rest_lm >= s.rest_guard_s)
+            if good.any():
+                # the latest stretch of rest, however long the free run-in since (up to a max
+                # age)
+                newest = float(rt[good][-1])
+                sel = good & (rt >= newest - s.bias_window_s) & (rt >= t0 - s.bias_max_age_s)
+                if int(sel.sum()) >= s.bias_min_samples:
+                    bias = float(np.mean(self._rest_r[sel]))
         self._state = next_state(self._state, Input.START)
         self._r = _Rundown(index, bias, t0, T0, self._take_runin(bias))
         events.append(
