@@ -58,6 +58,7 @@ def overrides(
         "CLAMPD__STATION__TOPIC_PREFIX": prefix,
         "CLAMPD__BROKER__URL": broker.url,
         "CLAMPD__OUTBOX__PATH": str(journal),
+        "CLAMPD__VIEW__PORT": "0",  # the station view on a free port: tests run side by side
     }
     for i, wrench_id in enumerate(("wr-07", "wr-11")):
         env[f"CLAMPD__WRENCH__{i}__ADDRESS"] = addresses[wrench_id]

@@ -68,6 +68,7 @@ def run(args: argparse.Namespace) -> int:
     """Run the demo and print where everything went."""
     from clampd.daemon.runtime._demo import DemoError, DemoOptions, run_demo
     from clampd.daemon.runtime._terminal import TerminalView
+    from clampd.daemon.view import announce_view
 
     if args.parts < 1:
         return _fail(f"--parts must be at least 1, got {args.parts}")
@@ -81,7 +82,13 @@ def run(args: argparse.Namespace) -> int:
         return _fail(f"--out: cannot create {out_dir}: {exc.strerror or exc}")
     _log_to_file(out_dir / "demo.log", args.verbose)
     view = TerminalView(sys.stdout, tty=False if args.plain else None)
-    options = DemoOptions(out_dir=out_dir, parts=args.parts, broker_url=args.broker, seed=args.seed)
+    options = DemoOptions(
+        out_dir=out_dir,
+        parts=args.parts,
+        broker_url=args.broker,
+        seed=args.seed,
+        extras=(announce_view,),
+    )
 
     async def main() -> int:
         interrupt = asyncio.Event()

@@ -98,8 +98,8 @@ _REWORK = 2
 _REFRESH_S = 0.1
 
 DemoExtra = Callable[[Station, MesStandIn], contextlib.AbstractAsyncContextManager[Sequence[str]]]
-"""A hook that runs beside the demo's station (e.g. a web page); it yields the lines it
-wants in the final report (such as the page's address)."""
+"""A hook that runs beside the demo's station (e.g. ``clampd.daemon.view.announce_view``,
+which prints the station view's address); it yields the lines it wants in the final report."""
 
 
 class DemoError(RuntimeError):
@@ -199,6 +199,9 @@ def demo_config(
     env = {
         "CLAMPD__BROKER__URL": broker_url,
         "CLAMPD__OUTBOX__PATH": str(out_dir / "journal" / "outbox.sqlite3"),
+        # The station view on a free loopback port: a demo must not fail because another
+        # demo or a station on this machine holds the default one.
+        "CLAMPD__VIEW__PORT": "0",
     }
     for i, address in enumerate(addresses):
         env[f"CLAMPD__WRENCH__{i}__ADDRESS"] = address

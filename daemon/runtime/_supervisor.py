@@ -14,6 +14,8 @@ group, each named after what it serves:
 ``clampd.status``          retained wrench and station status, latest wins
 ``clampd.watchdog``        ``WATCHDOG=1`` to systemd while the loop is alive
 ``clampd.outbox``          retention pruning of the journal
+``clampd[WRENCH].state``   tells the station state when that wrench's rundown starts
+``clampd.view``            the station view, a local read-only web page (``[view]``)
 =========================  ===========================================================
 
 (the MQTT session runs its own ``clampd.mqtt.*`` tasks inside its context.)
@@ -48,7 +50,7 @@ import logging
 import random
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Final
+from typing import Any, Final, Protocol
 
 from clampd.daemon.runtime._backoff import next_delay
 from clampd.daemon.runtime._ble import BleakWrenchLink, LinkRefusedError
@@ -58,15 +60,17 @@ from clampd.daemon.runtime._cues import CuePlayer, make_player
 from clampd.daemon.runtime._flusher import ResultFlusher
 from clampd.daemon.runtime._mqtt import BrokerUnavailable, MqttSession
 from clampd.daemon.runtime._outbox import AsyncOutbox
-from clampd.daemon.runtime._results import OutboxResultSink
+from clampd.daemon.runtime._results import OutboxResultSink, ResultSink
 from clampd.daemon.runtime._station import StateChange, StationState
 from clampd.daemon.runtime._systemd import SystemdNotifier
 from clampd.daemon.runtime._wrench import (
     LiveEventPayload,
+    StatusSink,
     WorkOrder,
     WrenchWorker,
     engine_settings,
 )
+from clampd.daemon.view import ViewService
 from clampd.protocol import Judgement, StationStatus, Topics, WrenchStatus
 
 __all__ = [
@@ -94,6 +98,9 @@ _PRUNE_EVERY_S: Final = 3600.0
 # 0.1 s, so 50 ms adds no noticeable lag to "busy" (our choice).
 _POLL_S: Final = 0.05
 _WATCH_S: Final = 0.05
+# How often the status task looks for a new connection when nothing else wakes it: a wrench
+# status republished within a second of a broker restart is soon enough for a dashboard.
+_RECHECK_S: Final = 1.0
 
 BleakKwargs = Callable[[WrenchConfig], dict[str, Any]]
 """Per wrench, keyword arguments for ``BleakClient`` (the virtual link's backend in the demo
@@ -117,6 +124,12 @@ def resident_memory_kib() -> int | None:
 
 class _Stopped(Exception):  # noqa: N818 -- a signal to the task group, not an error
     """Raised inside the task group to end it cleanly."""
+
+
+class _LivePort(Protocol):
+    """The worker's live-event port as this module hands it over."""
+
+    def publish_live(self, event: LiveEventPayload) -> None: ...
 
 
 class _StatusBoard:
@@ -164,7 +177,10 @@ class _StatusBoard:
                 self._dirty.discard(wrench_id)
             if not self._dirty:
                 self._wake.clear()
-                await self._wake.wait()
+                # Also look again now and then: a reconnect brings no status offer of its own.
+                with contextlib.suppress(TimeoutError):
+                    async with asyncio.timeout(_RECHECK_S):
+                        await self._wake.wait()
             else:
                 await asyncio.sleep(_POLL_S)
 
@@ -251,6 +267,15 @@ class Station:
         self.unsent_at_stop: int | None = None
         """Results left in the outbox after the shutdown flush (None until it ran)."""
         self.state = StationState(config.station.id, {}, {})
+        self.view: ViewService | None = None
+        """The station view (a local web page), None when ``[view] enabled = false``."""
+        if config.view.enabled:
+            self.view = ViewService(
+                config.station.id,
+                name=config.station.name,
+                bind=config.view.bind,
+                port=config.view.port,
+            )
         self.flusher: ResultFlusher | None = None
         self.commands: CommandHandler | None = None
         self._status_changed = asyncio.Event()
@@ -328,9 +353,19 @@ class Station:
         self, outbox: AsyncOutbox, session: MqttSession, board: _StatusBoard, player: CuePlayer
     ) -> None:
         cfg = self.config
-        sink = OutboxResultSink(outbox, self.topics)
+        sink: ResultSink = OutboxResultSink(outbox, self.topics)
+        ports: StatusSink = board
+        live: _LivePort = board
+        if self.view is not None:
+            # The view sees what the MQTT side sees, after it: stored results, wrench
+            # status and live events (its adapters never block the worker).
+            sink = self.view.results(sink)
+            tee = self.view.board(board)
+            ports, live = tee, tee
         allowed = [w.address for w in cfg.wrench]
         self._build_state()
+        if self.view is not None:
+            self.view.watch_state(self.state)
         for wcfg in cfg.wrench:
             kwargs = self._bleak_kwargs(wcfg) if self._bleak_kwargs is not None else None
             link = BleakWrenchLink(
@@ -342,8 +377,8 @@ class Station:
                 link=link,
                 station=self._station_port(),
                 results=sink,
-                live=board,
-                status=board,
+                live=live,
+                status=ports,
                 cues=player,
                 settings=engine_settings(
                     wcfg,
@@ -392,6 +427,12 @@ class Station:
         tg.create_task(self._status_pump(self.session), name="clampd.station-status")
         for slot in self.slots.values():
             tg.create_task(self._watch(slot), name=f"clampd[{slot.config.id}].state")
+        if self.view is not None:
+            session = self.session
+            tg.create_task(
+                self.view.run(online=session.state.online.is_set, backlog=self.flusher.backlog),
+                name="clampd.view",
+            )
 
     async def _watch(self, slot: _WorkerSlot) -> None:
         """Tell the station state when a rundown starts (and ends, if no result came)."""
