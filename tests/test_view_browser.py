@@ -44,7 +44,8 @@ LARGE: ViewportSize = {"width": 1920, "height": 1080}  # a line lead's desktop
 DATASET = "n => n.map(e => e.dataset.{})"
 
 
-def _need_browser() -> None:
+def need_browser() -> None:
+    """Skip (or fail under ``CLAMPD_REQUIRE_BROWSER=1``) without Chromium or Playwright."""
     why = None
     try:
         import playwright.async_api  # noqa: F401
@@ -102,7 +103,7 @@ class Page:
 
 @contextlib.asynccontextmanager
 async def chromium(tmp_path: Path, url: str) -> AsyncIterator[Page]:
-    _need_browser()
+    need_browser()
     from playwright.async_api import async_playwright
 
     async with async_playwright() as pw:
@@ -179,8 +180,9 @@ async def test_a_rundown_draws_live_and_its_result_appears(
             await asyncio.sleep(0.05)
         played = await replay
         running = [n for s, n in seen if s == "running"]
-        # Live: while the rundown ran, the page showed the curve growing, many times over.
-        assert len(set(running)) >= 10, seen
+        # Live: while the rundown ran, the page showed the curve growing, step after step
+        # (how many steps a 50 ms poll catches depends on the machine; three prove pushes).
+        assert len(set(running)) >= 3, seen
         assert running == sorted(running)
         assert shot_mid
         await p.page.wait_for_selector('#verdict[data-status="OK"]')

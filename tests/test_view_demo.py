@@ -4,8 +4,7 @@
 virtual wrenches over the virtual GATT link, the real station daemon, mosquitto or the
 embedded broker) as they happen: the live curve grows, results arrive, no console error.
 
-Runs once the supervisor serves the view (``Station.view``); skipped before that, and when
-Chromium or Playwright is missing (unless ``CLAMPD_REQUIRE_BROWSER=1``).
+Skipped when Chromium or Playwright is missing (unless ``CLAMPD_REQUIRE_BROWSER=1``).
 """
 
 from __future__ import annotations
@@ -16,23 +15,12 @@ import sys
 from pathlib import Path
 
 import pytest
-from test_view_browser import chromium
-
-from clampd.daemon.runtime._config import load_config
-from clampd.daemon.runtime._supervisor import Station
-
-ROOT = Path(__file__).resolve().parents[1]
-
-
-def _station_serves_the_view() -> bool:
-    config = load_config(ROOT / "deploy" / "station.example.toml", env={}, check_files=False).config
-    return hasattr(Station(config), "view")
+from test_view_browser import chromium, need_browser
 
 
 @pytest.mark.slow
 async def test_the_demo_prints_the_view_and_the_page_follows_it(tmp_path: Path) -> None:
-    if not _station_serves_the_view():
-        pytest.skip("the supervisor does not serve the station view yet (Station.view)")
+    need_browser()
     proc = await asyncio.create_subprocess_exec(
         sys.executable,
         "-m",
