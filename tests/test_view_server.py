@@ -11,10 +11,15 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import json
-from collections.abc import AsyncIterator
+import queue
+import socket
+import threading
+from collections.abc import AsyncIterator, Iterator
 from typing import Any
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from view_support import POSITIONS, STATION, WRENCH, get, raw, show_station
 
 from clampd.daemon.view import MAX_HEAD_BYTES, ViewHub, ViewServer, ViewServerError, load_assets
@@ -332,3 +337,81 @@ async def test_serving_makes_no_blocking_call_in_the_loop(blockbuster: object) -
             assert (await sse.next_event())[0] == "snapshot"
             hub.on_broker(True, 1)
             assert (await sse.next_event())[0] == "delta"
+
+
+# -- arbitrary requests -------------------------------------------------------------------------
+
+_ALLOWED = {200, 400, 403, 404, 405, 431, 505}
+
+
+@pytest.fixture(scope="module")
+def threaded_server() -> Iterator[int]:
+    """The real server on its own loop in a thread, so hypothesis can drive it synchronously."""
+    ready: queue.Queue[int] = queue.Queue()
+    loop = asyncio.new_event_loop()
+
+    async def main(stop: asyncio.Event) -> None:
+        hub = ViewHub(STATION)
+        show_station(hub, dict.fromkeys(POSITIONS, "pending"))
+        async with ViewServer(hub) as server:
+            ready.put(server.port)
+            await stop.wait()
+
+    stop = asyncio.Event()
+    thread = threading.Thread(target=loop.run_until_complete, args=(main(stop),), daemon=True)
+    thread.start()
+    port = ready.get(timeout=10)
+    try:
+        yield port
+    finally:
+        loop.call_soon_threadsafe(stop.set)
+        thread.join(10)
+        loop.close()
+
+
+def _send(port: int, data: bytes) -> bytes:
+    with socket.create_connection(("127.0.0.1", port), timeout=5) as s:
+        with contextlib.suppress(ConnectionError):
+            s.sendall(data)
+            s.shutdown(socket.SHUT_WR)  # no more bytes: a partial head ends here
+        chunks = []
+        with contextlib.suppress(ConnectionError):
+            while chunk := s.recv(65536):
+                chunks.append(chunk)
+        return b"".join(chunks)
+
+
+# (``/events`` is left out: a valid request for it opens a stream that never ends by design.)
+_line_parts = st.text(
+    alphabet=st.characters(min_codepoint=0, max_codepoint=255), min_size=0, max_size=40
+)
+_requests = st.one_of(
+    st.binary(max_size=3000),
+    st.builds(
+        lambda method, path, version, headers: (
+            f"{method} {path} {version}\r\n{headers}\r\n\r\n".encode("latin-1")
+        ),
+        st.sampled_from(["GET", "HEAD", "POST", "get", "", "GET GET", "\x00"]),
+        st.one_of(st.sampled_from(["/", "/snapshot.json", "/assets/app.js", "/x"]), _line_parts),
+        st.sampled_from(["HTTP/1.1", "HTTP/1.0", "HTTP/2", "", "http/1.1"]),
+        _line_parts,
+    ),
+)
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=_requests)
+def test_any_request_bytes_get_a_status_or_a_close_and_the_server_goes_on(
+    threaded_server: int, data: bytes
+) -> None:
+    reply = _send(threaded_server, data)
+    if reply:
+        head = reply.split(b"\r\n", 1)[0].decode("latin-1")
+        assert head.startswith("HTTP/1.1 "), head
+        status = int(head.split(" ")[1])
+        assert status in _ALLOWED
+        if status == 200:
+            assert b"\r\n\r\n" in reply
+    # The next ordinary request is served as if nothing happened.
+    ok = _send(threaded_server, b"GET /snapshot.json HTTP/1.1\r\nHost: localhost\r\n\r\n")
+    assert ok.startswith(b"HTTP/1.1 200 OK")
