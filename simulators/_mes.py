@@ -403,10 +403,9 @@ class MesStandIn:
         else:
             if isinstance(decoded, dict):
                 payload = decoded
-                errors = tuple(
-                    f"{'/'.join(map(str, e.absolute_path)) or '(root)'}: {e.message}"
-                    for e in self._validator.iter_errors(decoded)
-                )
+                # ~16 ms of pure Python for a 256-point curve (measured): off the loop, which
+                # in the demo also runs the station and the virtual wrenches.
+                errors = await asyncio.to_thread(self._check, decoded)
             else:
                 payload, errors = None, ("not a JSON object",)
         result = ReceivedResult(payload=payload, raw=raw, errors=errors, received_at=received_at)
@@ -421,6 +420,12 @@ class MesStandIn:
             self._on_result(result)
         async with self._new_result:
             self._new_result.notify_all()
+
+    def _check(self, result: dict[str, Any]) -> tuple[str, ...]:
+        return tuple(
+            f"{'/'.join(map(str, e.absolute_path)) or '(root)'}: {e.message}"
+            for e in self._validator.iter_errors(result)
+        )
 
     def _take_reply(self, raw: bytes, properties: Properties | None) -> None:
         try:
