@@ -69,20 +69,22 @@ def frame(data: bytes) -> None:
 
 
 def profile(data: bytes) -> None:
-    fdp = atheris.FuzzedDataProvider(data)
-    text = fdp.ConsumeUnicodeNoSurrogates(fdp.ConsumeIntInRange(0, 4096)) + "\nname_ = 1"
+    """TOML text, then NUL NUL, then one notification to decode with the profile."""
+    text_bytes, _, frame_bytes = data.partition(b"\0\0")
+    # Plain decoding keeps a seed file intact, so mutations start from a valid profile; the
+    # comment line makes sure load_profile reads a str as TOML text (it holds an '=').
+    text = "# =\n" + text_bytes.decode("utf-8", "replace")
     try:
         prof = load_profile(text)
     except ProfileError:
         return
     with contextlib.suppress(FrameError):
-        prof.decode(fdp.ConsumeBytes(fdp.remaining_bytes()))
+        prof.decode(frame_bytes)
 
 
 def config(data: bytes) -> None:
-    text = atheris.FuzzedDataProvider(data).ConsumeUnicodeNoSurrogates(len(data))
     with contextlib.suppress(ConfigError):
-        parse_config(text, env={}, check_files=False)
+        parse_config(data.decode("utf-8", "replace"), env={}, check_files=False)
 
 
 def command(data: bytes) -> None:

@@ -34,9 +34,10 @@ def _seed(target: str) -> bytes:
         head = struct.pack("<BBHIHBBff", 1, 0, 7, 1000, 1000, 2, 0, 0.01, 0.1)
         return head + struct.pack("<8h", 100, 0, 0, 50, 200, 0, 0, 60)
     if target == "profile":
-        text = (ROOT / "protocol" / "profiles" / "bench-stick.toml").read_text(encoding="utf-8")
-        # FuzzedDataProvider reads a length first; the harness takes it modulo 4097.
-        return len(text).to_bytes(2, "little") + text.encode()
+        text = (ROOT / "protocol" / "profiles" / "bench-stick.toml").read_bytes()
+        # bench-stick: magic 0xB5, seq, t_ms u32, n = 1, then torque i32 and gyro_z i16
+        # (big-endian, as the file says).
+        return text + b"\0\0" + struct.pack(">BBIBih", 0xB5, 1, 20, 1, 1234, -56)
     if target == "config":
         return (ROOT / "deploy" / "station.example.toml").read_bytes()
     body = {
