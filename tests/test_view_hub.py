@@ -12,6 +12,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.integrate import cumulative_trapezoid
 from view_support import (
     FRAME,
@@ -30,6 +32,7 @@ from clampd.daemon.runtime import AsyncOutbox, OutboxResultSink, StationState
 from clampd.daemon.runtime._outbox import OutboxFullError
 from clampd.daemon.view import (
     MAX_LIVE_POINTS,
+    RECENT_RESULTS,
     RESULT_POINTS,
     ResultTee,
     StatusTee,
@@ -452,3 +455,122 @@ def test_held_points_carry_the_stamp_of_the_oldest_one() -> None:
     last = [d for d in deltas(sub) if d["type"] == "points"][-1]
     assert len(last["points"]) == 3
     assert last["ts_ms"] == stamps[0]
+
+
+# -- the delta protocol: a page that applies every delta sees exactly the snapshot ---------------
+
+
+def _apply(page: dict[str, Any], msg: dict[str, Any]) -> None:
+    """What ``app.js`` ``apply()`` does, written again from the message contract."""
+    kind = msg["type"]
+    if kind in ("station", "jobs", "broker"):
+        page[kind] = msg["value"]
+    elif kind == "wrench":
+        page["wrenches"][msg["value"]["id"]] = msg["value"]
+    elif kind == "rundown":
+        page["rundowns"][msg["value"]["wrench_id"]] = msg["value"]
+        page["focus"] = msg["value"]["wrench_id"]
+    elif kind == "points":
+        r = page["rundowns"][msg["wrench_id"]]
+        assert (r["id"], r["epoch"], len(r["points"])) == (msg["id"], msg["epoch"], msg["from"])
+        r["points"] += msg["points"]
+        r["torque_nm"], r["angle_deg"] = msg["torque_nm"], msg["angle_deg"]
+    elif kind == "mark":
+        r = page["rundowns"][msg["wrench_id"]]
+        assert r["id"] == msg["id"]
+        r["marks"].append(msg["value"])
+    elif kind == "result":
+        page["results"] = [msg["value"], *page["results"]][:RECENT_RESULTS]
+    else:
+        raise AssertionError(f"unknown delta {kind}")
+
+
+_W = ("w-a", "w-b")
+_STATES = ("pending", "ok", "nok")
+_RIDS = tuple(new_uuid7() for _ in range(3))
+_ops = st.lists(
+    st.one_of(
+        st.tuples(st.just("link"), st.sampled_from(_W), st.booleans(), st.integers(0, 100)),
+        st.tuples(st.just("broker"), st.booleans(), st.integers(0, 50)),
+        st.tuples(
+            st.just("joints"), st.lists(st.sampled_from(["pending", "ok", "nok"]), max_size=4)
+        ),
+        st.tuples(
+            st.just("progress"),
+            st.sampled_from(_W),
+            st.sampled_from(_RIDS),
+            st.floats(0, 80),
+            st.one_of(st.none(), st.floats(0, 400)),
+        ),
+        st.tuples(st.just("snug"), st.sampled_from(_W), st.sampled_from(_RIDS)),
+        st.tuples(st.just("stop"), st.sampled_from(_W), st.sampled_from(_RIDS), st.floats(0, 90)),
+        st.tuples(st.just("tick"), st.floats(0.0, 0.1)),
+    ),
+    max_size=60,
+)
+
+
+@settings(max_examples=200, deadline=None)
+@given(ops=_ops)
+def test_a_page_applying_every_delta_holds_the_snapshot(ops: list[tuple[Any, ...]]) -> None:
+    clock = FakeClock()
+    hub = ViewHub(STATION, clock=clock, queue_bound=10_000)
+    sub = hub.subscribe()
+    first = sub.next_nowait()
+    assert first is not None
+    assert first.event == "snapshot"
+    page = json.loads(first.data)
+    last_seq = page["seq"]
+    for op in ops:
+        match op:
+            case ("link", w, up, battery):
+                hub.on_link(w, connected=up, battery_pct=battery)
+            case ("broker", up, backlog):
+                hub.on_broker(up, backlog)
+            case ("joints", states):
+                positions = {f"P{i}": s for i, s in enumerate(states)} or {"P0": "pending"}
+                hub.on_station(
+                    station_view(STATION, jobs=[(None, PROGRAM, PART, positions, False)])
+                )
+            case ("progress", w, rid, torque, angle):
+                hub.publish_live(
+                    LiveProgress(
+                        station=STATION,
+                        wrench_id=w,
+                        rundown_id=rid,
+                        t_s=0.0,
+                        torque_nm=torque,
+                        angle_deg=angle,
+                    )
+                )
+            case ("snug", w, rid):
+                hub.publish_live(
+                    LiveSnug(station=STATION, wrench_id=w, rundown_id=rid, t_s=0.0, torque_nm=8.0)
+                )
+            case ("stop", w, rid, angle):
+                hub.publish_live(
+                    LiveStop(
+                        station=STATION,
+                        wrench_id=w,
+                        rundown_id=rid,
+                        t_s=0.0,
+                        trigger=StopTrigger.TORQUE_REACHED,
+                        torque_nm=38.0,
+                        angle_deg=angle,
+                    )
+                )
+            case ("tick", dt_s):
+                clock.now += dt_s
+        while (m := sub.next_nowait()) is not None:
+            body = json.loads(m.data)
+            assert m.event == "delta"
+            assert body["seq"] == last_seq + 1  # strictly one after the other
+            last_seq = body["seq"]
+            _apply(page, body)
+    final = hub.snapshot()  # sends any held points first
+    while (m := sub.next_nowait()) is not None:
+        _apply(page, json.loads(m.data))
+    for key in ("station", "jobs", "wrenches", "rundowns", "results", "broker"):
+        assert page[key] == final[key], key
+    if final["rundowns"]:
+        assert page["focus"] == final["focus"]
