@@ -550,3 +550,49 @@ def test_run_refuses_bad_input_with_one_line(
     if text.startswith("[station]"):
         assert "(and 3 more)" in err  # name, topic_prefix and broker are missing too
     assert not (tmp_path / "j.sqlite3").exists()  # nothing started, nothing written
+
+
+async def test_a_worker_that_fails_is_restarted_alone(live: Live) -> None:
+    """A bug escaping one wrench's worker (injected once, on top of the real connection)
+    restarts that worker only; the other wrench and the daemon never notice."""
+    mes = live.mes
+    slot = live.station.slots["wr-11"]
+    worker = slot.worker
+    failed = asyncio.Event()
+
+    def fail_once(item: object) -> None:
+        if not failed.is_set():
+            failed.set()
+            raise RuntimeError("injected fault in the worker")
+
+    original = worker._handle
+
+    async def handle(item: Any) -> None:
+        fail_once(item)
+        await original(item)
+
+    worker._handle = handle  # type: ignore[method-assign]
+    await eventually(lambda: slot.restarts == 1)
+    worker._handle = original  # type: ignore[method-assign]
+    # The other wrench went on working throughout.
+    reply = await mes.select_program(
+        "spindle-m10-8.8", "DK48-2026-000906", ["spindle-bolt-1"], wrench_id="wr-07"
+    )
+    assert reply["status"] == "ok"
+    live.rig.hand_over("wr-07")
+    first = await live.next_result()
+    assert first.payload is not None
+    assert first.payload["status"] == "OK", first.payload["reasons"]
+    # The restarted wrench reconnects and is judged again.
+    await wait_for_status(mes, "wrench/wr-11/status", lambda s: s.get("connected") is True)
+    reply = await mes.select_program(
+        "guard-m8-torque", "DK48-2026-000906", ["guard-screw-1"], wrench_id="wr-11"
+    )
+    assert reply["status"] == "ok"
+    live.rig.hand_over("wr-11")
+    second = await live.next_result()
+    assert second.payload is not None
+    assert second.payload["wrench"]["wrench_id"] == "wr-11"
+    assert second.payload["status"] == "OK", second.payload["reasons"]
+    assert live.station.slots["wr-07"].restarts == 0
+    assert not live.task.done()

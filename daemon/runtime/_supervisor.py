@@ -50,7 +50,7 @@ import logging
 import random
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Final, Protocol
+from typing import Any, Final, Protocol, TypeVar
 
 from clampd.daemon.runtime._backoff import next_delay
 from clampd.daemon.runtime._ble import BleakWrenchLink, LinkRefusedError
@@ -101,6 +101,8 @@ _WATCH_S: Final = 0.05
 # How often the status task looks for a new connection when nothing else wakes it: a wrench
 # status republished within a second of a broker restart is soon enough for a dashboard.
 _RECHECK_S: Final = 1.0
+
+_E = TypeVar("_E", bound=BaseException)
 
 BleakKwargs = Callable[[WrenchConfig], dict[str, Any]]
 """Per wrench, keyword arguments for ``BleakClient`` (the virtual link's backend in the demo
@@ -462,15 +464,14 @@ class Station:
         while True:
             try:
                 await slot.worker.run()
-            except LinkRefusedError as exc:
-                slot.parked = str(exc)
-                _log.error(
-                    "%s: %s; this wrench is not served until the config is fixed",
-                    slot.config.id,
-                    exc,
-                )
-                await asyncio.Event().wait()  # parked for good; the other wrenches go on
-            except Exception:
+            except Exception as exc:  # the worker's task group wraps what escapes in a group
+                refused = _first(exc, LinkRefusedError)
+                if refused is not None:
+                    slot.parked = str(refused)
+                    _log.error(
+                        "%s: %s; not served until the config is fixed", slot.config.id, refused
+                    )
+                    await asyncio.Event().wait()  # parked for good; the other wrenches go on
                 slot.restarts += 1
                 _log.exception(
                     "%s %s: worker failed (a bug); restarting it",
@@ -542,6 +543,18 @@ class Station:
             if removed:
                 _log.info("journal: %d sent result(s) past retention removed", removed)
             await asyncio.sleep(_PRUNE_EVERY_S)
+
+
+def _first(exc: BaseException, kind: type[_E]) -> _E | None:
+    """``exc`` itself or the first exception of ``kind`` inside (nested) exception groups."""
+    if isinstance(exc, kind):
+        return exc
+    if isinstance(exc, BaseExceptionGroup):
+        for inner in exc.exceptions:
+            found = _first(inner, kind)
+            if found is not None:
+                return found
+    return None
 
 
 def _settled(worker: WrenchWorker) -> bool:
