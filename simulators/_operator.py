@@ -7,6 +7,14 @@ again; it reacts to cues (APPROACH: slow down, STOP: stop and release) and to wh
 bolt giving way, its own strength limit, an optional own stop rule), always after a reaction
 time drawn from a lognormal distribution.
 
+A person who stopped on a STOP cue and released may wait for the tool's verdict (an OK or NOK
+cue, ``confirm_wait_s``): when none comes, the tool has not said done (the target was not
+reached), so they pull again at their fine rate and stop at the next STOP cue, at most
+``max_repulls`` times. After an APPROACH cue they slow to the lower of a fraction of their
+steady rate and their fine pull rate (``fine_rate_dps``): people finish a joint with a slow,
+controlled pull rather than a scaled-down version of their fast one; a pull again is a nudge
+at half the fine rate.
+
 :class:`Bench` couples the operator, the wrench's elasticity and a joint. The handle angle h,
 the fastener angle φ and the wind-up w = h − φ (tool deflection) obey
 
@@ -45,6 +53,12 @@ __all__ = [
 ]
 
 
+# A pull again after the tool did not say done is a nudge at this fraction of the fine rate
+# (10–20 °/s for the sampled population). Modelling choice: someone who has just stopped close
+# to the end moves slowly, listening for the tool.
+_NUDGE = 0.5
+
+
 class OperatorError(ValueError):
     """Operator or bench parameters that make no sense (the caller's input)."""
 
@@ -65,6 +79,15 @@ class OperatorParams:
     reaction_median_s: float = 0.2
     reaction_sigma: float = 0.25
     approach_slowdown: float = 0.5  # rate factor after hearing the APPROACH cue
+    # Fine pull rate after the APPROACH cue and for a pull again (None: only the factor above).
+    # Modelling choice: a controlled finishing pull of 20–40 °/s (sample() draws from it), a
+    # third to a half of a brisk 60–120 °/s pull; no published figure at hand.
+    fine_rate_dps: float | None = None
+    # After releasing on a STOP cue, wait this long for the OK/NOK cue before pulling again
+    # (None: never wait, done at once). Modelling choice: about a second (sample(): 0.8–1.2 s),
+    # several reaction times, the pause of someone listening for the tool.
+    confirm_wait_s: float | None = None
+    max_repulls: int = 3  # then give up waiting (modelling choice: nobody pulls forever)
     ignore_cues: bool = False  # for out-of-window joints: only the own stop rule counts
     stop_at_torque_nm: float | None = None
     stop_at_angle_deg: float | None = None  # fastener angle from the start of the rundown
@@ -90,6 +113,12 @@ class OperatorParams:
             value = getattr(self, name)
             if not (math.isfinite(value) and value >= 0.0):
                 raise OperatorError(f"{name} must be finite and ≥ 0, got {value!r}")
+        for name in ("fine_rate_dps", "confirm_wait_s"):
+            value = getattr(self, name)
+            if value is not None and not (math.isfinite(value) and value > 0.0):
+                raise OperatorError(f"{name} must be None or finite and > 0, got {value!r}")
+        if isinstance(self.max_repulls, bool) or self.max_repulls < 0:
+            raise OperatorError(f"max_repulls must be an integer ≥ 0, got {self.max_repulls!r}")
         if not 0.0 < self.approach_slowdown <= 1.0:
             raise OperatorError("approach_slowdown must lie in (0, 1]")
         lo, hi = self.part_pause_s
@@ -110,6 +139,8 @@ class OperatorParams:
             "stroke_deg": float(rng.uniform(60.0, 100.0)),
             "back_swing_deg": float(rng.uniform(30.0, 90.0)),
             "reaction_median_s": float(rng.uniform(0.17, 0.23)),
+            "fine_rate_dps": float(rng.uniform(20.0, 40.0)),
+            "confirm_wait_s": float(rng.uniform(0.8, 1.2)),
         }
         drawn.update(overrides)
         return cls(**drawn)  # type: ignore[arg-type]
@@ -124,6 +155,7 @@ class OperatorPhase(enum.Enum):
     PAUSE = "pause"
     STOPPING = "stopping"
     RELEASE = "release"
+    AWAIT = "await"  # released on a STOP cue, listening for the tool's verdict
     DONE = "done"
 
 
@@ -143,8 +175,10 @@ class Operator:
         self._phase_t = 0.0
         self._travel = 0.0
         self._stroke_len = self._draw_stroke()
-        self._factor = 1.0
+        self._target = self.params.steady_rate_dps
         self._slow_at: float | None = None
+        self._verdict = False
+        self._repulls = 0
         self._stop_at: float | None = None
         self._peak_torque = 0.0
         self._released_from = 0.0
@@ -163,7 +197,14 @@ class Operator:
     def hear(self, pattern: CuePattern) -> None:
         """A cue reached the operator now; the response follows after a reaction time."""
         self.heard.append((self.t_s, pattern))
-        if self.params.ignore_cues or self.phase in (OperatorPhase.RELEASE, OperatorPhase.DONE):
+        if pattern in (CuePattern.OK, CuePattern.NOK):
+            self._verdict = True  # the tool said done
+            return
+        if self.params.ignore_cues or self.phase in (
+            OperatorPhase.RELEASE,
+            OperatorPhase.AWAIT,
+            OperatorPhase.DONE,
+        ):
             return
         if pattern is CuePattern.APPROACH and self._slow_at is None:
             self._slow_at = self.t_s + self.reaction_time_s()
@@ -171,7 +212,11 @@ class Operator:
             self._decide_stop("stop-cue")
 
     def _decide_stop(self, reason: str) -> None:
-        if self._stop_at is None and self.phase not in (OperatorPhase.RELEASE, OperatorPhase.DONE):
+        if self._stop_at is None and self.phase not in (
+            OperatorPhase.RELEASE,
+            OperatorPhase.AWAIT,
+            OperatorPhase.DONE,
+        ):
             self._stop_at = self.t_s + self.reaction_time_s()
             self.stop_reason = reason
 
@@ -197,7 +242,8 @@ class Operator:
         if torque_nm >= p.strength_nm:
             self._decide_stop("strength")
         if self._slow_at is not None and self.t_s >= self._slow_at:
-            self._factor = p.approach_slowdown
+            self._slow_at = None
+            self._target = self._fine(p.steady_rate_dps * p.approach_slowdown)
         if (
             self._stop_at is not None
             and self.t_s >= self._stop_at
@@ -213,6 +259,10 @@ class Operator:
         self.rate_dps = self._rate(dt_s, torque_nm)
         return self.rate_dps
 
+    def _fine(self, rate: float) -> float:
+        fine = self.params.fine_rate_dps
+        return rate if fine is None else min(rate, fine)
+
     def _enter(self, phase: OperatorPhase) -> None:
         self.phase = phase
         self._phase_t = 0.0
@@ -227,7 +277,7 @@ class Operator:
                     self._enter(OperatorPhase.FORWARD)
                 return 0.0
             case OperatorPhase.FORWARD:
-                target = p.steady_rate_dps * self._factor
+                target = self._target
                 braking = r * r / (2.0 * p.accel_dps2)
                 if self._travel + braking >= self._stroke_len:
                     r = max(0.0, r - p.accel_dps2 * dt)
@@ -267,13 +317,36 @@ class Operator:
                 if self._travel + braking >= p.release_deg and torque_nm <= 0.0:
                     r = min(0.0, r + a * dt)
                     if r == 0.0:
-                        self._enter(OperatorPhase.DONE)
+                        self._enter(self._after_release())
                 else:
                     r = max(-p.back_rate_dps / 2.0, r - a * dt)
                 self._travel -= r * dt
                 return r
+            case OperatorPhase.AWAIT:
+                if self._verdict:
+                    self._enter(OperatorPhase.DONE)
+                elif p.confirm_wait_s is not None and self._phase_t >= p.confirm_wait_s:
+                    # no verdict: the tool has not said done, so pull again, slowly, and stop
+                    # at the next STOP cue
+                    self._repulls += 1
+                    self._stop_at = None
+                    self.stop_reason = None
+                    self._target = self._fine(self._target) * _NUDGE
+                    self._stroke_len = self._draw_stroke()
+                    self._enter(OperatorPhase.FORWARD)
+                return 0.0
             case OperatorPhase.DONE:
                 return 0.0
+
+    def _after_release(self) -> OperatorPhase:
+        p = self.params
+        waits = (
+            p.confirm_wait_s is not None
+            and self.stop_reason == "stop-cue"
+            and not self._verdict
+            and self._repulls < p.max_repulls
+        )
+        return OperatorPhase.AWAIT if waits else OperatorPhase.DONE
 
 
 class Motion(NamedTuple):

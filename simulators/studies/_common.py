@@ -11,7 +11,9 @@ wait, so the operator hears a cue as late as a real one would arrive.
 
 Two cue policies are compared: ``predictive`` plays the engine's own cues (approach and the
 early stop cue); ``at_target`` plays one stop cue when the engine reports the target reached
-(``StopReached``), the way a wrench that only signals the target behaves.
+(``StopReached``), the way a wrench that only signals the target behaves. Under both, the
+verdict is played when the engine finishes a rundown (OK or NOK), as the station runtime does:
+a person who released on a stop cue listens for it and pulls again when it does not come.
 
 After the run the remaining samples are fed; a rundown still open is aborted through the
 engine (NOK ``aborted``), so every simulated joint ends with a judged result. The preload is
@@ -51,6 +53,7 @@ from clampd.daemon.engine import (
     Program,
     RundownFinished,
     RundownResult,
+    Status,
     StopReached,
 )
 from clampd.simulators import (
@@ -197,6 +200,9 @@ class EngineLoop:
                 self.policy is CuePolicy.AT_TARGET and isinstance(ev, StopReached) and ev.last_step
             ):
                 cues.append(CuePattern.STOP)
+            elif isinstance(ev, RundownFinished):  # the runtime plays the verdict at the finish
+                ok = ev.result.status is Status.OK
+                cues.append(CuePattern.OK if ok else CuePattern.NOK)
         cues.sort(key=lambda c: c is not CuePattern.STOP)
         self._queue.extend(cues)
 
