@@ -263,3 +263,31 @@ async def test_a_page_pinned_to_one_wrench_stays_on_it(tmp_path: Path) -> None:
         assert "pinned" in (await pinned.attr(f'#wrenches [data-wrench="{other}"]', "class") or "")
         assert pinned.problems == []
         assert follows.problems == []
+
+
+async def test_a_lost_stream_dims_the_page_and_says_so(tmp_path: Path) -> None:
+    """A stale OK must not look live: when the station stops answering, the page says so in
+    words and dims what it shows until the stream is back."""
+    hub = ViewHub(STATION)
+    show_station(hub, dict.fromkeys(POSITIONS, "pending"))
+    server = ViewServer(hub)
+    await server.start()
+    port = server.port
+    try:
+        async with chromium(tmp_path, server.url) as p:
+            await p.until("document.body.dataset.stream === 'up'")
+            assert not await p.page.is_visible("#stale")
+            await server.close()
+            await p.until("document.body.dataset.stream === 'down'")
+            assert await p.page.is_visible("#stale")
+            assert "NO LIVE DATA" in await p.text("#stale")
+            # The station is back on the same address: the page reconnects by itself.
+            server = ViewServer(hub, port=port)
+            await server.start()
+            await p.until("document.body.dataset.stream === 'up'", timeout_s=15)
+            assert not await p.page.is_visible("#stale")
+            # Failed reconnection attempts are logged by the browser; nothing else is.
+            others = [x for x in p.problems if "/events" not in x and "ERR_CONNECTION" not in x]
+            assert others == []
+    finally:
+        await server.close()

@@ -298,6 +298,7 @@
   function setStream(s, text) {
     const chip = $("stream");
     chip.dataset.state = s;
+    document.body.dataset.stream = s;
     chip.querySelector(".text").textContent = text;
   }
 
