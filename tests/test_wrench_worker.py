@@ -508,17 +508,23 @@ async def test_with_nothing_selected_torque_gets_the_locked_cue_and_no_result(
     assert rig.worker.engine is None  # no program, no engine: nothing to judge against
 
 
+# Frames handed over without letting the loop run, at most: 2 000 frames of 22 samples at
+# 1 kHz are 44 s of sensor time, far more than the operator's pause between parts.
+_HELD_FRAMES_MAX = 2_000
+
+
 class FramesLink:
-    """The link port without a radio: the simulated sensor's v1 frames handed to the worker
-    one per turn of the event loop, as fast as it takes them; cue writes go back to the
-    sensor (where the simulated operator hears them). Only the radio is left out."""
+    """The link port without a radio: the simulated sensor's v1 frames handed to the worker as
+    fast as it takes them; cue writes go back to the sensor (where the simulated operator
+    hears them). Only the radio is left out. ``hold(n)`` is asked before each frame whether
+    to let the event loop run first (True) or hand the frame over at once (False)."""
 
     address = "F0:00:00:00:02:10"
     battery_pct: int | None = None
 
-    def __init__(self, sensor: VirtualWrenchSensor, after_frame: Callable[[], None]) -> None:
+    def __init__(self, sensor: VirtualWrenchSensor, hold: Callable[[], bool]) -> None:
         self._sensor = sensor
-        self._after_frame = after_frame
+        self._hold = hold
         self.info: WrenchInfo | None = decode_info(sensor.info_value())
         sensor.on_control(encode_start())
 
@@ -528,10 +534,10 @@ class FramesLink:
 
     async def notifications(self, *, idle_s: float | None = None) -> AsyncIterator[LinkItem]:
         while True:
+            if self._hold():
+                await asyncio.sleep(0)  # one loop turn: the worker's results task runs
             data, _span = self._sensor.next_notification()
             yield Notification(time.monotonic(), data)
-            await asyncio.sleep(0)  # one loop turn: the worker's results task runs here
-            self._after_frame()
 
     async def write_control(self, data: bytes) -> None:
         self._sensor.on_control(data)
@@ -542,42 +548,65 @@ class FramesLink:
         await serve(self)
 
 
-async def test_a_judged_result_counts_as_unstored_until_it_is_durable(tmp_path: Path) -> None:
-    # The next rundown's joint position depends on it: a rundown that starts while the
-    # previous result is not yet stored takes the position in force once that one is. So
-    # from the end of a rundown to its durable put the worker must never report zero
-    # unstored results, also while the result is being mapped to its payload (in a thread).
-    rng = np.random.default_rng(3)
+async def test_a_rundown_started_while_the_last_result_is_mapped_gets_the_next_position(
+    tmp_path: Path,
+) -> None:
+    # The first result is mapped to its payload in a thread before it is stored; the station
+    # advances to the next joint position only once it is stored. The second rundown is made
+    # to start exactly then: its frames are handed over without letting the loop run, so the
+    # mapping cannot finish first. It must still be recorded at the next position.
+    rng = np.random.default_rng(7)
     bench = Bench(
-        [JointModel.sample(rng, QUICK_JOINTS)],
-        OperatorParams(steady_rate_dps=30.0, start_delay_s=0.2),
+        [JointModel.sample(rng, QUICK_JOINTS) for _ in range(2)],
+        # Stops by feel (the frames come faster than real time, so the engine's cue timing
+        # does not apply): past the 35 N*m target after a reaction time, inside the window.
+        OperatorParams(
+            steady_rate_dps=30.0,
+            part_pause_s=(0.4, 0.6),
+            start_delay_s=0.2,
+            ignore_cues=True,
+            stop_at_torque_nm=31.0,
+        ),
         rng,
         deflection_deg_per_nm=0.02,
     )
     sensor = VirtualWrenchSensor(SensorParams(serial="SIM-210-A"), rng, bench)
-    station = Station(program_from_mapping(TORQUE_PROGRAM), "GB-0042", ["bolt-1", "bolt-2"])
+    # The demo torque program with room above for a stop by feel (demo values).
+    program = program_from_mapping({**TORQUE_PROGRAM, "torque_window": ["31 N*m", "55 N*m"]})
+    station = Station(program, "GB-0042", ["bolt-1", "bolt-2"])
     sinks = Sinks()
-    seen_rundown = False
-    after_finish: list[int] = []  # unstored_results at each frame between finish and store
-    stored = asyncio.Event()
     worker: WrenchWorker | None = None
+    phase = "first"  # -> "mapping" (first result in the thread) -> "second"
+    held: list[int] = []  # frames handed over while the loop was held
+    stored = asyncio.Event()
 
-    def after_frame() -> None:
-        nonlocal seen_rundown
+    def hold() -> bool:
+        nonlocal phase
         assert worker is not None
-        if worker.stats.results_stored >= 1:
+        if worker.stats.results_stored >= 2:
             stored.set()
-        if worker.in_rundown:
-            seen_rundown = True
-        elif seen_rundown and worker.stats.results_stored == 0:
-            after_finish.append(worker.unstored_results)
+        # Finished and taken off the queue, not yet handed to the outbox: being mapped.
+        if (
+            phase == "first"
+            and worker.stats.rundowns == 1
+            and not worker.in_rundown
+            and worker.unstored_results == 0
+            and worker.stats.results_stored == 0
+        ):
+            phase = "mapping"
+        if phase == "mapping":
+            held.append(1)
+            if not worker.in_rundown and len(held) < _HELD_FRAMES_MAX:
+                return False  # keep the loop from running until the second rundown starts
+            phase = "second" if worker.in_rundown else "gave up"
+        return True
 
     async with AsyncOutbox(tmp_path / "outbox.sqlite3") as outbox:
         config = wrench_config(FramesLink.address)
         worker = WrenchWorker(
             config,
             station_id=STATION,
-            link=FramesLink(sensor, after_frame),
+            link=FramesLink(sensor, hold),
             station=station,
             results=OutboxResultSink(outbox, Topics(PREFIX)),
             live=sinks,
@@ -592,7 +621,9 @@ async def test_a_judged_result_counts_as_unstored_until_it_is_durable(tmp_path: 
             task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await task
-        (entry,) = await outbox.list()
-    assert payload_of(entry).joint_position == "bolt-1"
-    assert after_finish, "the worker stored the result before another frame arrived"
-    assert set(after_finish) == {1}, after_finish
+        entries = sorted(await outbox.list(), key=lambda e: e.seq)
+    assert phase == "second", "the second rundown never started while the first was mapped"
+    first, second = (payload_of(e) for e in entries[:2])
+    assert first.status is Judgement.OK, first.reasons  # only an OK result advances (Station)
+    assert (first.joint_position, second.joint_position) == ("bolt-1", "bolt-2")
+    assert station.done[:2] == [("bolt-1", Judgement.OK), ("bolt-2", second.status)]

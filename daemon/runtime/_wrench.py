@@ -362,7 +362,8 @@ class WrenchWorker:
         self._unassigned_warned = False
         self._unstored: collections.deque[RundownResult] = collections.deque()
         self._finished: asyncio.Queue[_Finished] = asyncio.Queue()
-        # 1 while the results task maps a result it took off ``_finished`` (it is in neither).
+        # 1 while the results task maps a result it took off ``_finished``: that result is in
+        # neither queue, and is deliberately not in ``unstored_results`` (see ``_start``).
         self._mapping = 0
         self._cue_queue: asyncio.Queue[bytes] | None = None
         self._last_status: tuple[object, ...] | None = None
@@ -387,8 +388,9 @@ class WrenchWorker:
 
     @property
     def unstored_results(self) -> int:
-        """Judged results not yet durable (being mapped, stored, or refused and held)."""
-        return len(self._unstored) + self._finished.qsize() + self._mapping
+        """Judged results not yet durable: queued for mapping, being stored, or refused and
+        held (the one being mapped in a thread is not counted)."""
+        return len(self._unstored) + self._finished.qsize()
 
     async def run(self) -> None:
         """Serve the wrench forever (until cancelled): connect, stream, reconnect; store
@@ -643,7 +645,8 @@ class WrenchWorker:
             order=order,
             t0=event.t_s,
             extra=tuple(extra),
-            order_stale=self.unstored_results > 0,
+            # Also while the previous result is being mapped: its position is not done yet.
+            order_stale=self.unstored_results > 0 or self._mapping > 0,
         )
         self._abort = False
         self.stats.rundowns += 1
@@ -711,9 +714,9 @@ class WrenchWorker:
                         order, part_id=now.part_id, joint_position=now.joint_position
                     )
             # Off the loop: downsampling a long curve costs ~15 ms of Python (measured with
-            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues. The
-            # result still counts as unstored meanwhile (``_mapping``), so a rundown starting
-            # now takes the joint position in force once this one is stored.
+            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues. A
+            # rundown starting meanwhile sees ``_mapping`` and takes the joint position in
+            # force once this one is stored.
             payload = await asyncio.to_thread(
                 build_result,
                 item.result,
