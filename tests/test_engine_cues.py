@@ -293,3 +293,17 @@ def test_no_rearm_without_a_new_stroke() -> None:
     t, T, r, _ = short_angle_trace(60.0, 90.0)
     events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
     assert len(cues(events, CueKind.STOP)) == 1
+
+
+def test_stop_cue_just_after_snug_predicts_with_the_full_rate() -> None:
+    """120 deg/s straight through snug on a 33° step: the cue belongs 0.25 s before the
+    crossing, 3° (25 ms) past snug, while a 50 ms window still reaches back before snug. The
+    rate there is the pull's own (closed form: the crossing − H_STOP), not one diluted by the
+    angle held at 0 before snug."""
+    t, T, r, _ = short_angle_trace(120.0, 90.0)
+    events = Engine(prog(strategy="torque-angle", target_angle=33.0), SETTINGS).feed(t, T, r)
+    snug = next(e for e in events if isinstance(e, SnugReached))
+    cue = cues(events, CueKind.STOP)
+    assert len(cue) == 1
+    assert cue[0].t_s - snug.t_s < 0.05
+    assert cue[0].t_s == pytest.approx(first_stop(events).t_s - H_STOP, abs=2 * DT + 1e-9)

@@ -57,7 +57,8 @@ nothing in the per-sample path, and sample-exact like everything else (see ``_pr
 Cueing
 ------
 The value driven to target (torque, or angle since the step began) is extrapolated linearly
-with its rate over the trailing ``cue_rate_window_s``. Only a turning sample predicts, and only
+with its rate over the trailing ``cue_rate_window_s`` (an angle's rate from the angle counted
+since the rundown's start, continuous through snug). Only a turning sample predicts, and only
 once that window lies wholly inside its stroke after the stroke resumed fully (torque back at
 the previous stroke's level): during the wind-up of a new stroke torque climbs while the
 fastener stands still, and a rate taken across it would fire the stop cue far too early. The
@@ -189,6 +190,9 @@ class _Params:
         self.aim = s.cue_aim if p.cue_aim is None else p.cue_aim
         # an angle step driven from snug: its approach cue may come before snug
         self.early = bool(self.steps) and self.steps[0].kind == _ANGLE
+        # any angle step: keep the counted angle since the start (continuous through snug) for
+        # the rate its cues predict with
+        self.track_pa = any(st.kind == _ANGLE for st in self.steps)
         self.proofing = Limits.of(p)
 
 
@@ -214,7 +218,7 @@ class _Rundown:
         self.T: FloatArray = np.empty(cap)
         self.th: FloatArray = np.empty(cap)
         self.rc: FloatArray = np.empty(cap)  # bias-corrected rate (run-in angle before snug)
-        self.pa: FloatArray = np.empty(cap)  # counted angle since the start, before snug only
+        self.pa: FloatArray = np.empty(cap)  # counted angle since the start (angle programs)
         self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
         self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
         self.n = 0
@@ -688,7 +692,7 @@ class Engine:
         tt[1:] = t
         dt = tt[1:] - tt[:-1]
         turn = self._turning(R, rc, T, n0)
-        pre = P_.early and R.snug is None  # an early approach cue may need the angle to snug
+        pre = P_.track_pa  # angle cues take their rate from the angle counted since the start
         if R.snug is None:
             k = _first(P_.snug <= T)
             if k < m:
@@ -854,14 +858,15 @@ class Engine:
         """(value, rate, turning) of the driven quantity over chunk[p:m] for prediction; only
         a turning sample may predict (see "Cueing")."""
         j, dtj, ok = self._rate_window(R, n0=n0, p=p, m=m, t=t)
+        rate = np.zeros(m - p)
         if spec.kind == _TORQUE:
             v = R.T[n0 + p : n0 + m]
-            vj = R.T[j]
+            np.divide(v - R.T[j], dtj, out=rate, where=dtj > 0.0)
         else:
             v = R.th[n0 + p : n0 + m] - R.step_base
-            vj = R.th[j] - R.step_base
-        rate = np.zeros(m - p)
-        np.divide(v - vj, dtj, out=rate, where=dtj > 0.0)
+            # the angle since the start: a window reaching back before snug (where the angle
+            # from snug is held at 0) would understate the rate just after snug
+            np.divide(R.pa[n0 + p : n0 + m] - R.pa[j], dtj, out=rate, where=dtj > 0.0)
         np.maximum(rate, 0.0, out=rate)
         return v, rate, ok
 
