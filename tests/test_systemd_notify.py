@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import socket
 from pathlib import Path
 
@@ -28,3 +29,13 @@ def test_outside_systemd_every_call_is_a_no_op() -> None:
     assert n.watchdog_interval_s is None
     n.ready()
     n.watchdog()
+
+
+def test_a_watchdog_meant_for_another_process_is_not_petted() -> None:
+    # sd_watchdog_enabled(3): WATCHDOG_PID, when set, names the process the watchdog is for.
+    usec = {"NOTIFY_SOCKET": "/run/x", "WATCHDOG_USEC": "15000000"}
+    assert SystemdNotifier({**usec, "WATCHDOG_PID": str(os.getpid())}).watchdog_interval_s == 5.0
+    assert (
+        SystemdNotifier({**usec, "WATCHDOG_PID": str(os.getpid() + 1)}).watchdog_interval_s is None
+    )
+    assert SystemdNotifier({**usec, "WATCHDOG_PID": "garbage"}).watchdog_interval_s is None

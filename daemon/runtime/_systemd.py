@@ -27,13 +27,18 @@ class SystemdNotifier:
             address = "\0" + address[1:]
         self._address = address or None
         usec = environ.get("WATCHDOG_USEC", "")
+        # sd_watchdog_enabled(3): a WATCHDOG_PID naming another process means the watchdog is
+        # that process's (e.g. a shell that started us and handed down its environment).
+        pid = environ.get("WATCHDOG_PID", "")
+        ours = not pid or (pid.isdigit() and int(pid) == os.getpid())
         self.watchdog_interval_s: float | None = (
             # pet at a third of the timeout: two pets can be missed before systemd acts
-            int(usec) / 1e6 / 3 if usec.isdigit() and int(usec) > 0 else None
+            int(usec) / 1e6 / 3 if ours and usec.isdigit() and int(usec) > 0 else None
         )
 
     @property
     def enabled(self) -> bool:
+        """True when started by systemd with a notification socket."""
         return self._address is not None
 
     def _send(self, message: str) -> None:
@@ -48,13 +53,17 @@ class SystemdNotifier:
                 return
 
     def ready(self, status: str = "") -> None:
+        """The daemon is up (``Type=notify`` units count as started from here)."""
         self._send("READY=1" + (f"\nSTATUS={status}" if status else ""))
 
     def status(self, status: str) -> None:
+        """A one-line status for ``systemctl status``."""
         self._send(f"STATUS={status}")
 
     def watchdog(self) -> None:
+        """Pet the watchdog (every ``watchdog_interval_s``)."""
         self._send("WATCHDOG=1")
 
     def stopping(self) -> None:
+        """Shutdown has begun (systemd stops expecting watchdog pets)."""
         self._send("STOPPING=1")
