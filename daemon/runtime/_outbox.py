@@ -744,10 +744,34 @@ class AsyncOutbox:
             raise OutboxError("AsyncOutbox used outside its 'async with' block")
         return self._outbox
 
-    async def put(self, result_id: str, topic: str, payload: bytes, **meta: Any) -> bool:
+    async def put(
+        self,
+        result_id: str,
+        topic: str,
+        payload: bytes,
+        *,
+        station: str | None = None,
+        wrench: str | None = None,
+        program: str | None = None,
+        part_id: str | None = None,
+        status: str | None = None,
+        finished_at: dt.datetime | str | None = None,
+    ) -> bool:
         """See ``Outbox.put``; wakes ``wait_pending`` when a row was inserted."""
         core = self._core()
-        inserted = await self._run(functools.partial(core.put, result_id, topic, payload, **meta))
+        put = functools.partial(
+            core.put,
+            result_id,
+            topic,
+            payload,
+            station=station,
+            wrench=wrench,
+            program=program,
+            part_id=part_id,
+            status=status,
+            finished_at=finished_at,
+        )
+        inserted = await self._run(put)
         if inserted:
             self._new_result.set()
         return inserted
@@ -765,9 +789,33 @@ class AsyncOutbox:
         """See ``Outbox.get``."""
         return await self._run(functools.partial(self._core().get, result_id))
 
-    async def list(self, **filters: Any) -> builtins.list[Entry]:
+    async def list(
+        self,
+        *,
+        limit: int = 50,
+        newest_first: bool = True,
+        wrench: str | None = None,
+        part_id: str | None = None,
+        status: str | None = None,
+        program: str | None = None,
+        unsent_only: bool = False,
+        finished_from: str | None = None,
+        finished_to: str | None = None,
+    ) -> builtins.list[Entry]:
         """See ``Outbox.list``."""
-        return await self._run(functools.partial(self._core().list, **filters))
+        query = functools.partial(
+            self._core().list,
+            limit=limit,
+            newest_first=newest_first,
+            wrench=wrench,
+            part_id=part_id,
+            status=status,
+            program=program,
+            unsent_only=unsent_only,
+            finished_from=finished_from,
+            finished_to=finished_to,
+        )
+        return await self._run(query)
 
     async def stats(self) -> OutboxStats:
         """See ``Outbox.stats``."""
