@@ -132,8 +132,13 @@ async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncI
         config: StationConfig = parse_config(
             SCENARIO.station_toml, env=env, base_dir=tmp_path
         ).config
+        # One central per wrench, as a station with one radio per tool would have: the two
+        # connects never wait for each other.
+        centrals = {w: await rig.air.add_central() for w in rig.wrenches}
         station = Station(
-            config, bleak_kwargs=lambda _w: rig.air.bleak_kwargs(), cue_player=NullCuePlayer()
+            config,
+            bleak_kwargs=lambda w: centrals[w.id].bleak_kwargs(),
+            cue_player=NullCuePlayer(),
         )
         stop = asyncio.Event()
         results: asyncio.Queue[ReceivedResult] = asyncio.Queue()
@@ -154,7 +159,9 @@ async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncI
                 await task
 
 
-async def eventually(check: Callable[[], bool], timeout_s: float = 30.0) -> None:
+# Generous waits: the machine running the suite may be loaded many times over (a wait only
+# bounds a hang; a passing test never waits this long).
+async def eventually(check: Callable[[], bool], timeout_s: float = 60.0) -> None:
     """Wait until ``check()`` holds (state with no event of its own to wait on)."""
     async with asyncio.timeout(timeout_s):
         while True:
@@ -164,7 +171,7 @@ async def eventually(check: Callable[[], bool], timeout_s: float = 30.0) -> None
 
 
 async def wait_for_status(
-    mes: MesStandIn, sub: str, ok: Any, timeout_s: float = 30.0
+    mes: MesStandIn, sub: str, ok: Any, timeout_s: float = 60.0
 ) -> dict[str, Any]:
     topic = f"{mes.prefix}/{sub}"
     await eventually(lambda: bool(ok(mes.statuses.get(topic, {}))), timeout_s)

@@ -300,9 +300,11 @@ async def run_demo(
         view.subtitle = f"broker {broker_desc}; journal {report.journal}"
         for w in config.wrench:
             view.add_wrench(w.id, w.torque_max_nm)
+        # One central per wrench (one radio per tool): the connects never queue.
+        centrals = {w.id: await air.add_central() for w in config.wrench}
         station = Station(
             config,
-            bleak_kwargs=lambda _w: air.bleak_kwargs(),
+            bleak_kwargs=lambda w: centrals[w.id].bleak_kwargs(),
             cue_player=NullCuePlayer(),
         )
         host, port = _broker_address(broker_url)

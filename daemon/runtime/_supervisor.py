@@ -172,11 +172,14 @@ class _StatusBoard:
                 self._dirty |= set(self._latest)
                 seen_generation = generation
             for wrench_id in sorted(self._dirty):
+                status = self._latest[wrench_id]
                 try:
-                    await self._session.publish_model(self._latest[wrench_id])
+                    await self._session.publish_model(status)
                 except BrokerUnavailable:
                     break  # offline again; the next generation republishes everything
-                self._dirty.discard(wrench_id)
+                if self._latest[wrench_id] is status:
+                    # Only when no newer status came in while this one was being sent.
+                    self._dirty.discard(wrench_id)
             if not self._dirty:
                 self._wake.clear()
                 # Also look again now and then: a reconnect brings no status offer of its own.
@@ -482,31 +485,32 @@ class Station:
                 attempt += 1
 
     async def _wind_down(self) -> None:
-        """Let rundowns in progress finish for the grace period, then abort them."""
+        """Let rundowns in progress finish for the grace period, abort what is left, then
+        give the judged results time to become durable (bounded by the flush timeout)."""
         with contextlib.suppress(TimeoutError):
             async with asyncio.timeout(self._finish_grace_s):
                 await self._no_rundown()
-        if not all(_settled(s.worker) for s in self.slots.values()):
+        if any(s.worker.in_rundown for s in self.slots.values()):
             for slot in self.slots.values():
                 if slot.worker.request_abort():
                     _log.warning("%s: rundown aborted at shutdown", slot.config.id)
-            # The abort lands on the worker's next idle tick (IDLE_S) and is stored NOK.
-            with contextlib.suppress(TimeoutError):
-                async with asyncio.timeout(self._finish_grace_s):
-                    await self._no_rundown()
-        # A result refused by a full outbox is still in memory: say so, it is lost at exit.
+            # The abort lands at the worker's next frame or idle tick (IDLE_S), judged NOK.
+        with contextlib.suppress(TimeoutError):
+            async with asyncio.timeout(self._finish_grace_s + self._flush_timeout_s):
+                await self._no_rundown()
         for slot in self.slots.values():
             if slot.worker.unstored_results:
                 _log.error(
-                    "%s: %d judged result(s) could not be stored (outbox full) and are lost",
+                    "%s: %d judged result(s) not stored when the daemon stopped (refused by "
+                    "the outbox, or still being stored); they are lost",
                     slot.config.id,
                     slot.worker.unstored_results,
                 )
 
     async def _no_rundown(self) -> None:
-        # Settled: no rundown in progress and every judged result durable (or held after an
-        # outbox refusal). A finished rundown is mapped and stored by the worker's results
-        # task a moment later, so "not in a rundown" alone would race the store.
+        # Settled: no rundown in progress and every judged result durable. A finished
+        # rundown is mapped and stored by the worker's results task a moment later, so
+        # "not in a rundown" alone would race the store.
         # Polled: the worker has no "settled" event, and this runs during shutdown only.
         while not all(_settled(s.worker) for s in self.slots.values()):  # noqa: ASYNC110
             await asyncio.sleep(_POLL_S)
@@ -558,10 +562,11 @@ def _first(exc: BaseException, kind: type[_E]) -> _E | None:
 
 
 def _settled(worker: WrenchWorker) -> bool:
+    # Nothing in progress and the result of every rundown started so far durable. (The
+    # worker's ``unstored_results`` leaves out the one being mapped in a thread, so the
+    # counters say it: every started rundown ends in exactly one stored result.)
     stats = worker.stats
-    return not worker.in_rundown and stats.results_stored + worker.unstored_results >= (
-        stats.rundowns
-    )
+    return not worker.in_rundown and stats.results_stored >= stats.rundowns
 
 
 def _version() -> str:
