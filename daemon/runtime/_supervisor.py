@@ -11,7 +11,8 @@ group, each named after what it serves:
 ``clampd[WRENCH].link``    the wrench's link, engine and results (``WrenchWorker.run``)
 ``clampd.flusher``         outbox → broker, in order, ``mark_sent`` after the PUBACK
 ``clampd.commands``        MQTT commands → station state, one reply per command
-``clampd.status``          retained wrench and station status, latest wins
+``clampd.status``          retained wrench status, latest wins per wrench
+``clampd.station-status``  retained station status after a joint position is done
 ``clampd.watchdog``        ``WATCHDOG=1`` to systemd while the loop is alive
 ``clampd.outbox``          retention pruning of the journal
 ``clampd[WRENCH].state``   tells the station state when that wrench's rundown starts
@@ -27,10 +28,12 @@ alone is started again after ``next_delay``. Only the supervisor's own tasks may
 
 Shutdown (SIGTERM/SIGINT set ``stop``): systemd hears ``STOPPING=1``; a rundown in progress
 may finish for ``finish_grace_s`` (the technician is mid-pull; cutting the record off is
-worse than waiting a moment), then it is aborted and stored NOK ``aborted``; the task group
-is cancelled; the outbox is flushed for up to ``flush_timeout_s`` while the broker is
-reachable; leaving the session publishes the retained ``offline`` status. Whatever could not
-be flushed stays in the outbox and goes out after the next start: nothing is lost.
+worse than waiting a moment), then it is aborted and judged NOK ``aborted``; the supervisor
+waits until every judged result is durable, then lets the flusher deliver the outbox for up
+to ``flush_timeout_s`` while the broker is reachable (the flusher is only cancelled once it is
+idle, so no result is sent twice); then the task group is cancelled and leaving the session
+publishes the retained ``offline`` status. Whatever could not be delivered stays in the
+outbox and goes out after the next start: nothing judged is lost.
 
 Readiness: ``READY=1`` once the outbox is open and every task is started (the broker and
 the wrenches may still be connecting: the daemon is doing its job, which includes waiting
