@@ -30,8 +30,9 @@ Shutdown (SIGTERM/SIGINT set ``stop``): systemd hears ``STOPPING=1``; a rundown 
 may finish for ``finish_grace_s`` (the technician is mid-pull; cutting the record off is
 worse than waiting a moment), then it is aborted and judged NOK ``aborted``; the supervisor
 waits until every judged result is durable, then lets the flusher deliver the outbox for up
-to ``flush_timeout_s`` while the broker is reachable (the flusher is only cancelled once it is
-idle, so no result is sent twice); then the task group is cancelled and leaving the session
+to ``flush_timeout_s`` while the broker is reachable (cancelled only once the outbox is empty
+or the time is up, so a result is not sent twice in the normal case); then the task group is
+cancelled and leaving the session
 publishes the retained ``offline`` status. Whatever could not be delivered stays in the
 outbox and goes out after the next start: nothing judged is lost.
 
