@@ -527,7 +527,7 @@ async def test_a_crashing_sensor_is_logged_and_the_wrench_falls_silent(
         assert "clampd[W-17].notify stopped" in caplog.text
         assert inbox.frames == []
         # The GATT server still answers: only the stream is gone.
-        assert len(await client.read_gatt_char(INFO_UUID)) == 39
+        assert len(await client.read_gatt_char(INFO_UUID)) == INFO.size
 
 
 @pytest.mark.parametrize("name", ["", "wrench\n1", "schlüssel"])
@@ -556,3 +556,21 @@ async def test_advertising_data_layout(name: str, ad_type: int) -> None:
         + bytes([len(name_part) + 1, ad_type])
         + name_part
     )
+
+
+async def test_a_request_whose_caller_gives_up_is_cancelled_with_it(bench: Bench) -> None:
+    # A caller's timeout (the daemon's GATT_TIMEOUT_S) cancels its read; the backend's own task
+    # for the request must end with it, not finish (or fail unobserved) on its own later.
+    async with BleakClient(bench.wrench.address, **bench.air.bleak_kwargs()) as client:
+        before = asyncio.all_tasks()
+        caller = asyncio.create_task(client.read_gatt_char(INFO_UUID))
+        for _ in range(2):
+            await asyncio.sleep(0)  # the request is on its way over the virtual link
+        requests = asyncio.all_tasks() - before - {caller}
+        assert requests, "the read finished before it could be abandoned"
+        caller.cancel()
+        with pytest.raises(asyncio.CancelledError):
+            await caller
+        assert all(r.cancelled() or r.cancelling() > 0 for r in requests)
+        # The link goes on serving: the next read gets the whole info record (PROFILE.md).
+        assert len(await client.read_gatt_char(INFO_UUID)) == INFO.size

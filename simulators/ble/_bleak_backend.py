@@ -243,7 +243,13 @@ class BumbleBleakClient(BaseBleakClient):
             raise BleakError(f"{self.address}: not connected")
         task = asyncio.ensure_future(request)
         waiters: set[asyncio.Future[Any]] = {task, gone}
-        await asyncio.wait(waiters, return_when=asyncio.FIRST_COMPLETED)
+        try:
+            await asyncio.wait(waiters, return_when=asyncio.FIRST_COMPLETED)
+        except asyncio.CancelledError:
+            # The caller gave up (its own timeout, a shutdown): the request must not live on
+            # unowned and finish, or fail unobserved, after its caller is gone.
+            task.cancel()
+            raise
         if not task.done():
             task.cancel()
             with contextlib.suppress(asyncio.CancelledError, Exception):
