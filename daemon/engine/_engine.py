@@ -562,6 +562,14 @@ class Engine:
     def _keep_runin(self, t: FloatArray, T: FloatArray, r: FloatArray, rest: BoolArray) -> None:
         m = t.shape[0]
         s = self._settings
+        moving_all = r > s.rest_rate_dps
+        if self._run_count == 0 and not moving_all.any():
+            # nothing kept and nothing to keep (the common idle frame): only the clocks move;
+            # the same state the full pass below leaves
+            if not rest.all():
+                self._run_last_move = max(self._run_last_move, float(t[~rest][-1]))
+            self._run_prev = (float(t[-1]), float(r[-1]))
+            return
         seed = np.empty(m + 1)
         seed[0] = self._run_last_move
         seed[1:] = np.where(rest, -np.inf, t)
@@ -583,7 +591,7 @@ class Engine:
             rr[0] = prev[1]
             rr[1:] = r[a:]
             dt = tt[1:] - tt[:-1]
-            moving = r[a:] > s.rest_rate_dps
+            moving = moving_all[a:]
             if moving.any():
                 inc = (rr[1:] + rr[:-1]) * 0.5 * dt
                 self._run_chunks.append((T[a:][moving], inc[moving], dt[moving]))
