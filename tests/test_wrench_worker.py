@@ -352,7 +352,14 @@ async def test_operator_who_ignores_cues_and_stops_short_is_nok_angle_low(rig: R
     assert CuePattern.NOK in [p for _, p, _ in rig.sensor.cues]
 
 
-@pytest.mark.parametrize("rig", [Setup(joints=2)], indirect=True)
+# The operator listens for the verdict and pulls again when none comes (a stop just short of
+# the target would otherwise leave the redone joint open until its timeout).
+_LISTENS = OperatorParams(
+    steady_rate_dps=30.0, part_pause_s=(0.4, 0.6), start_delay_s=0.5, confirm_wait_s=1.0
+)
+
+
+@pytest.mark.parametrize("rig", [Setup(joints=2, operator=_LISTENS)], indirect=True)
 async def test_link_lost_mid_rundown_is_nok_with_partial_curve_and_the_link_comes_back(
     rig: Rig,
 ) -> None:
