@@ -26,6 +26,7 @@ from clampd.simulators.studies._error_proofing import (
     error_proofing_program,
     error_proofing_study,
     proofing_case,
+    tolerance_factor,
 )
 
 # A joint-rate window as a station would set it after a teach-in on this population (the
@@ -86,6 +87,13 @@ def test_planner_joint_rate_window_matches_the_vdi_2230_relation() -> None:
     assert with_len.rundown_angle_window_deg[0] == pytest.approx(0.5 / 1.5 * 360.0)
 
 
+def test_tolerance_factor_matches_the_published_table() -> None:
+    """Two-sided normal tolerance factors, 95 % confidence (NIST/SEMATECH e-Handbook 7.2.6.3
+    and the usual tables, from memory): n = 100, 99 % coverage → 2.934; n = 30, 95 % → 2.549."""
+    assert tolerance_factor(100, 0.99) == pytest.approx(2.934, abs=0.01)
+    assert tolerance_factor(30, 0.95) == pytest.approx(2.549, abs=0.01)
+
+
 def test_study_arguments_are_checked() -> None:
     with pytest.raises(StudyError, match="teach_joints"):
         error_proofing_study(1, 1, workers=1, teach_joints=2)
@@ -111,8 +119,8 @@ def test_small_seeded_study_catches_every_fault_and_spares_good_joints(
     assert good["flagged"] == 0, good
     rate = small_study["program"]["joint_rate_window_nm_per_deg"]
     teach = small_study["teach_in"]
-    assert rate[0] == pytest.approx(
-        teach["joint_rate_mean"] - 3.0 * teach["joint_rate_sd"], abs=2e-4
-    )
+    low = teach["joint_rate_mean"] - teach["k_sigma"] * teach["joint_rate_sd"]
+    assert rate[0] == pytest.approx(low, abs=2e-4)
+    assert rate[1] == small_study["program"]["planner_joint_rate_window_nm_per_deg"][1]
     assert math.isfinite(teach["joint_rate_sd"])
     assert teach["joint_rate_sd"] > 0.0

@@ -46,7 +46,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     _add_study(
         sub.add_parser(
             "study",
-            help="seeded population study: preload, cues or angle",
+            help="seeded population study: preload, cues, angle or error-proofing",
             description=_run_study.__doc__,
         )
     )
@@ -65,7 +65,9 @@ def _error(message: str) -> int:
 
 # ---------------------------------------------------------------------------- study
 def _add_study(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("kind", choices=("preload", "cues", "angle"), help="which study")
+    parser.add_argument(
+        "kind", choices=("preload", "cues", "angle", "error-proofing"), help="which study"
+    )
     parser.add_argument(
         "--joints",
         type=int,

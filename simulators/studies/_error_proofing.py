@@ -12,10 +12,13 @@ torque and angle windows are not part of this study).
 The program is the planner's torque-angle proposal for the population (``propose_program``
 with the thread length run down before the head seats), read back through the engine's own
 program parser. The joint-rate window is the one exception: the planner's window spans both
-friction corners of the friction range and is too wide to see a missing washer (the washer
-changes the rate by about 12 % in this model, the corners span ±8 %), so the station narrows
-it the way a plant does — from a teach-in run of known-good joints (mean ± ``TEACH_K`` standard
-deviations, on seeds the scored joints never use).
+friction corners of the friction range (widened for the fit) and is too wide to see a missing
+washer (the washer softens the joint by about 12 % in this model), so the station narrows its
+low side the way a plant does — from a teach-in run of known-good joints on seeds the scored
+joints never use: the lower limit of a normal tolerance interval that holds 99.5 % of good
+joints with 95 % confidence (Howe's factor, from scipy's normal and chi-square quantiles). The
+high side keeps the planner's physics bound: the measured rates have a heavier upper tail than
+a normal spread, and the fault this study must catch lies on the low side.
 
 Population: M10 property class 8.8, steel, clamp length 30 mm, the wrench taking the whole free
 rundown (first turn 60–180° before the head touches, the simulator's default); thread and head
@@ -38,6 +41,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from clampd.daemon.engine import (
     Check,
@@ -66,13 +70,15 @@ __all__ = [
     "EP_POPULATION",
     "FALSE_ALARM_GOAL",
     "PROOFING_REASONS",
+    "TEACH_CONFIDENCE",
+    "TEACH_COVERAGE",
     "TEACH_JOINTS",
-    "TEACH_K",
     "ProofingRun",
     "error_proofing_program",
     "error_proofing_study",
     "error_proofing_table",
     "proofing_case",
+    "tolerance_factor",
 ]
 
 # The goals the checks are held to (the product's requirement for this study).
@@ -116,12 +122,23 @@ _RUNDOWN_MM = (
     EP_POPULATION.contact_angle_deg[0] / 360.0 * _PITCH_MM,
     EP_POPULATION.contact_angle_deg[1] / 360.0 * _PITCH_MM,
 )
-# Teach-in of the joint-rate window: this many good joints, limits at mean ± TEACH_K·σ. Our
-# choice: the classic 3 σ control limits (common practice) leave 27 in 10 000 good joints outside
-# a normal spread, fewer for the truncated friction here; 100 joints
-# estimate σ to within about ±15 % (chi-square, 95 %).
+# Teach-in of the joint-rate window's low side: this many good joints; the tolerance interval
+# covers TEACH_COVERAGE of good joints with TEACH_CONFIDENCE (the false-alarm goal, and the
+# usual 95 %). Howe's approximation to the two-sided normal tolerance factor (NIST/SEMATECH
+# e-Handbook of Statistical Methods, section 7.2.6.3, from memory):
+# k = sqrt((n-1)(1+1/n) z²_{(1+p)/2} / χ²_{1-γ, n-1}); n = 100 gives k ≈ 3.2.
 TEACH_JOINTS = 100
-TEACH_K = 3.0
+TEACH_COVERAGE = 1.0 - FALSE_ALARM_GOAL
+TEACH_CONFIDENCE = 0.95
+
+
+def tolerance_factor(n: int, coverage: float = TEACH_COVERAGE) -> float:
+    """Howe's two-sided normal tolerance factor for ``n`` samples (see TEACH_COVERAGE)."""
+    z = float(stats.norm.ppf((1.0 + coverage) / 2.0))
+    chi = float(stats.chi2.ppf(1.0 - TEACH_CONFIDENCE, n - 1))
+    return math.sqrt((n - 1) * (1.0 + 1.0 / n) * z * z / chi)
+
+
 # A long bolt's free run at the slowest technician (30 °/s, with back-swings and regrips) takes
 # about a minute; longer than the other studies' limit (modelling choice with margin).
 _DURATION_LIMIT_S = 150.0
@@ -256,7 +273,10 @@ def error_proofing_study(
         [r.joint_rate_nm_per_deg for r in teach if r.joint_rate_nm_per_deg is not None]
     )
     mean, sd = float(rates.mean()), float(rates.std(ddof=1))
-    window = (mean - TEACH_K * sd, mean + TEACH_K * sd)
+    k_tol = tolerance_factor(int(rates.size))
+    planner_rate = teach_program.joint_rate_window_nm_per_deg
+    assert planner_rate is not None  # the planner always proposes it
+    window = (max(mean - k_tol * sd, planner_rate[0]), planner_rate[1])
     program = error_proofing_program(window)
     items: list[tuple[str, np.random.SeedSequence, Program]] = [
         (_GOOD, s, program) for s in _seeds(seed, 0, 2 * joints)
@@ -322,7 +342,9 @@ def error_proofing_study(
         },
         "teach_in": {
             "joints": teach_joints,
-            "k_sigma": TEACH_K,
+            "coverage": TEACH_COVERAGE,
+            "confidence": TEACH_CONFIDENCE,
+            "k_sigma": rounded(k_tol, 4),
             "joint_rate_mean": rounded(mean, 4),
             "joint_rate_sd": rounded(sd, 4),
         },

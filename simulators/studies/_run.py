@@ -13,12 +13,13 @@ from typing import Any
 from clampd.simulators.studies._angle import angle_study, angle_table
 from clampd.simulators.studies._common import StudyError, dumps
 from clampd.simulators.studies._cues import cue_study, cue_table
+from clampd.simulators.studies._error_proofing import error_proofing_study, error_proofing_table
 from clampd.simulators.studies._plot import plot_angle, plot_cues, plot_preload
 from clampd.simulators.studies._preload import preload_study, preload_table
 
 __all__ = ["STUDY_KINDS", "StudyReport", "run_study"]
 
-STUDY_KINDS: tuple[str, ...] = ("preload", "cues", "angle")
+STUDY_KINDS: tuple[str, ...] = ("preload", "cues", "angle", "error-proofing")
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True, eq=False)
@@ -42,6 +43,8 @@ class StudyReport:
                 return preload_table(self.figures, self.joints, self.seed)
             case "cues":
                 return cue_table(self.figures, self.joints, self.seed)
+            case "error-proofing":
+                return error_proofing_table(self.figures, self.joints, self.seed)
             case _:
                 return angle_table(self.figures, self.joints, self.seed)
 
@@ -52,6 +55,8 @@ class StudyReport:
                 plot_preload(path, self.figures, self.values)
             case "cues":
                 plot_cues(path, self.values)
+            case "error-proofing":
+                raise StudyError("the error-proofing study has no plot; read its table or --json")
             case _:
                 plot_angle(path, self.values)
 
@@ -67,6 +72,8 @@ def run_study(kind: str, *, joints: int, seed: int, workers: int | None = 1) -> 
             figures, values = preload_study(joints, seed, workers=workers)
         case "cues":
             figures, values = cue_study(joints, seed, workers=workers)
+        case "error-proofing":
+            figures, values = error_proofing_study(joints, seed, workers=workers)
         case "angle":
             figures, points = angle_study(joints, seed, workers=workers)
             values = dict(points)
