@@ -169,22 +169,24 @@ def _overrides(broker: LocalBroker, addresses: dict[str, str], journal: Path) ->
     return env
 
 
-def check_outbox(path: Path) -> tuple[bool, list[str], int]:
-    """(integrity ok, ids stored more than once, rows) read with plain sqlite3, so the check
-    does not trust the daemon's own outbox code. A missing file is sound and empty."""
+def check_outbox(path: Path) -> tuple[bool, list[str], int, int]:
+    """(integrity ok, ids stored more than once, rows, rows not yet sent) read with plain
+    sqlite3, so the check does not trust the daemon's own outbox code. A missing file is
+    sound and empty."""
     if not path.exists():
-        return True, [], 0
+        return True, [], 0, 0
     conn = sqlite3.connect(path)
     try:
         rows = [r[0] for r in conn.execute("PRAGMA integrity_check").fetchall()]
         dup = [r[0] for r in conn.execute("SELECT id FROM results GROUP BY id HAVING COUNT(*) > 1")]
         (n,) = conn.execute("SELECT COUNT(*) FROM results").fetchone()
+        (unsent,) = conn.execute("SELECT COUNT(*) FROM results WHERE sent_at IS NULL").fetchone()
     except sqlite3.DatabaseError as exc:
         _log.error("outbox unreadable: %s", exc)
-        return False, [], 0
+        return False, [], 0, 0
     finally:
         conn.close()
-    return rows == ["ok"], dup, int(n)
+    return rows == ["ok"], dup, int(n), int(unsent)
 
 
 def _stored(path: Path) -> dict[str, tuple[bytes, bool]]:
@@ -201,8 +203,9 @@ def _stored(path: Path) -> dict[str, tuple[bytes, bool]]:
 
 
 class _Mes:
-    """The plant side across broker outages: one ``MesStandIn`` per broker up-time, every
-    received result message kept in one list."""
+    """The plant side across broker outages: one ``MesStandIn`` per broker up-time (the
+    stand-in keeps no session, so it is connected whenever the broker is up: a result the
+    broker acknowledged must have reached it)."""
 
     def __init__(self, broker: LocalBroker) -> None:
         self.broker = broker
@@ -322,11 +325,13 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                     if life.outage_share is not None and selected.is_set() and now < kill_at:
                         outage_at = now + life.outage_share * (kill_at - now)
                         await asyncio.sleep(outage_at - time.monotonic())
+                        # Broker first, MES after: the MES never misses a result the broker
+                        # acknowledged to the station.
+                        await broker.stop()
+                        broker_down = True
                         if mes.stand_in is not None:
                             finished_stand_ins.append(mes.stand_in)
                         await mes.close()
-                        await broker.stop()
-                        broker_down = True
                         outages += 1
                     await asyncio.sleep(max(0.0, kill_at - time.monotonic()))
                     daemon.send_signal(signal.SIGKILL)
@@ -341,7 +346,7 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                 # The tool went dark: each technician lets go of the joint in hand.
                 for tech in rig.techs.values():
                     tech.put_down()
-                ok, dup, rows = await asyncio.to_thread(check_outbox, journal)
+                ok, dup, rows, unsent = await asyncio.to_thread(check_outbox, journal)
                 after_kill.append(
                     {
                         "kill": n,
@@ -350,6 +355,7 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                         "integrity_ok": ok,
                         "duplicate_ids": dup,
                         "rows": rows,
+                        "unsent": unsent,
                     }
                 )
                 _log.info("kill %d at %.2f s: integrity %s, %d rows", n, life.kill_at_s, ok, rows)
@@ -401,7 +407,7 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
             await mes.close()
     wall_s = time.monotonic() - t_start
     stored = _stored(journal)
-    ok_end, dup_end, rows_end = check_outbox(journal)
+    ok_end, dup_end, rows_end, _ = check_outbox(journal)
     messages = [r for m in finished_stand_ins for r in m.results]
     by_id: dict[str, list[bytes]] = {}
     for r in messages:
@@ -425,6 +431,9 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
         "wall_s": round(wall_s, 1),
         "daemon_exit_codes_on_kill": sorted(set(exit_codes)),
         "killed_by_sigkill": sum(1 for c in exit_codes if c == -signal.SIGKILL),
+        # Kills that left results stored but not yet published (delivered after a restart).
+        "kills_with_unsent_results": sum(1 for a in after_kill if a["unsent"]),
+        "max_unsent_at_a_kill": max((a["unsent"] for a in after_kill), default=0),
         "integrity_failures": [a["kill"] for a in after_kill if not a["integrity_ok"]],
         "duplicate_ids_in_outbox": sorted(
             {d for a in after_kill for d in a["duplicate_ids"]} | set(dup_end)
