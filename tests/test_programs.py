@@ -159,8 +159,12 @@ def test_file_shape_errors() -> None:
     assert "program" in _problems('program = "x"\n')
     with pytest.raises(ProgramError, match="cannot read"):
         load_program(DATA / "does-not-exist.toml")
-    probs = _problems('[program]\nversion = 2\nid = "x"\nstrategy = "yield"\nsnug_torque = 5\n')
+    probs = _problems('[program]\nversion = 0\nid = "x"\nstrategy = "yield"\nsnug_torque = 5\n')
     assert set(probs) == {"program.version"}
+    deep = "[program]\nid = " + "[" * 5000 + "]" * 5000 + "\n"
+    assert set(_problems(deep)) == {"(file)"}
+    # the version is the program's revision: any positive revision loads and is kept
+    assert _toml('version = 7\nid = "x"\nstrategy = "yield"\nsnug_torque = 5').version == 7
 
 
 def test_program_is_frozen_and_defaults_are_documented_values() -> None:

@@ -112,7 +112,9 @@ class Program(BaseModel):
 
     model_config = _STRICT
 
-    version: int = 1
+    # The program's revision, raised by whoever edits its values; results carry it so the MES
+    # can trace which revision tightened a joint (and pin one in select_program).
+    version: int = Field(default=1, ge=1)
     id: str = Field(min_length=1, max_length=64)
     name: str | None = None
     strategy: Strategy
@@ -160,8 +162,6 @@ class Program(BaseModel):
     def _consistent(self) -> Program:
         problems: list[str] = []
         s = self.strategy
-        if self.version != 1:
-            problems.append(f"version: unsupported program version {self.version} (this is 1)")
         needs_torque = s is Strategy.TORQUE
         needs_angle = s in (Strategy.TORQUE_ANGLE, Strategy.TORQUE_TO_YIELD)
         if needs_torque and self.target_torque_nm is None:
@@ -261,6 +261,9 @@ def parse_program(toml_text: str) -> Program:
         doc = tomllib.loads(toml_text)
     except tomllib.TOMLDecodeError as exc:
         raise ProgramError([("(file)", f"not valid TOML: {exc}")]) from None
+    except RecursionError:
+        # tomllib recurses per nesting level: a hostile file nested thousands deep is bad input
+        raise ProgramError([("(file)", "nested too deeply to be a program")]) from None
     problems = [
         (k, "unknown top-level key (a program file holds one [program])")
         for k in sorted(doc)
