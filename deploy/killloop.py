@@ -446,7 +446,6 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
         "results_unsent_at_end": sum(1 for _, sent in stored.values() if not sent),
         "outbox_drained": drained,
         "final_exit_code": final_exit,
-        "technician_joints_done": sum(t.joints_done for t in rig.techs.values()),
         "mes_messages": len(messages),
         "mes_unique": len(by_id),
         "mes_repeats": sum(repeats.values()),
