@@ -406,8 +406,8 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                 finished_stand_ins.append(mes.stand_in)
             await mes.close()
     wall_s = time.monotonic() - t_start
-    stored = _stored(journal)
-    ok_end, dup_end, rows_end, _ = check_outbox(journal)
+    stored = await asyncio.to_thread(_stored, journal)
+    ok_end, dup_end, rows_end, _ = await asyncio.to_thread(check_outbox, journal)
     messages = [r for m in finished_stand_ins for r in m.results]
     by_id: dict[str, list[bytes]] = {}
     for r in messages:
