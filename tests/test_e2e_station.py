@@ -603,3 +603,30 @@ async def test_a_worker_that_fails_is_restarted_alone(live: Live) -> None:
     assert second.payload["status"] == "OK", second.payload["reasons"]
     assert live.station.slots["wr-07"].restarts == 0
     assert not live.task.done()
+
+
+async def test_each_result_updates_the_retained_quality_statistics(
+    live: Live, broker: LocalBroker, topic_prefix: str
+) -> None:
+    import aiomqtt
+
+    from clampd.protocol import QualityStats
+
+    reply = await live.mes.select_program(
+        "spindle-m10-8.8", "DK48-2026-000902", ["spindle-bolt-1"], wrench_id="wr-07"
+    )
+    assert reply["status"] == "ok", reply
+    live.rig.hand_over("wr-07")
+    result = await live.next_result()
+    assert result.valid, result.errors
+    # A subscriber arriving afterwards gets the group's statistics: the topic is retained.
+    topic = f"{topic_prefix}/stats/spindle-m10-8.8/wr-07"
+    async with aiomqtt.Client(broker.host, broker.port) as client:
+        await client.subscribe(topic, qos=1)
+        async with asyncio.timeout(20):
+            message = await anext(aiter(client.messages))
+    assert message.retain
+    assert isinstance(message.payload, bytes)
+    stats = QualityStats.model_validate_json(message.payload)
+    assert (stats.program_id, stats.wrench_id, stats.count) == ("spindle-m10-8.8", "wr-07", 1)
+    assert stats.ok_count + stats.nok_count == 1

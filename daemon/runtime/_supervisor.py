@@ -15,6 +15,7 @@ group, each named after what it serves:
 ``clampd.station-status``  retained station status after a joint position is done
 ``clampd.watchdog``        ``WATCHDOG=1`` to systemd while the loop is alive
 ``clampd.outbox``          retention pruning of the journal
+``clampd.quality``         retained quality statistics and trend alarms (``_quality.py``)
 ``clampd[WRENCH].state``   tells the station state when that wrench's rundown starts
 ``clampd.view``            the station view, a local read-only web page (``[view]``)
 =========================  ===========================================================
@@ -64,6 +65,7 @@ from clampd.daemon.runtime._cues import CuePlayer, make_player
 from clampd.daemon.runtime._flusher import ResultFlusher
 from clampd.daemon.runtime._mqtt import BrokerUnavailable, MqttSession
 from clampd.daemon.runtime._outbox import AsyncOutbox
+from clampd.daemon.runtime._quality import QualityFeed
 from clampd.daemon.runtime._results import OutboxResultSink, ResultSink
 from clampd.daemon.runtime._station import StateChange, StationState
 from clampd.daemon.runtime._systemd import SystemdNotifier
@@ -286,6 +288,7 @@ class Station:
                 port=config.view.port,
             )
         self.flusher: ResultFlusher | None = None
+        self.quality: QualityFeed | None = None
         self.commands: CommandHandler | None = None
         self._status_changed = asyncio.Event()
 
@@ -322,6 +325,9 @@ class Station:
             self.outbox, self.session = outbox, session
             board = _StatusBoard(session)
             self._build(outbox, session, board, player)
+            assert self.quality is not None
+            replayed = await self.quality.replay(outbox)
+            _log.info("quality: %d journal result(s) replayed into the charts", replayed)
             try:
                 async with asyncio.TaskGroup() as tg:
                     for slot in self.slots.values():
@@ -331,6 +337,7 @@ class Station:
                     self._start_tasks(tg, board)
                     tg.create_task(self._watchdog(), name="clampd.watchdog")
                     tg.create_task(self._prune(outbox), name="clampd.outbox")
+                    tg.create_task(self.quality.run(session), name="clampd.quality")
                     self.ready.set()
                     self.notifier.ready(
                         f"station {cfg.station.id}: {len(self.slots)} wrench(es) configured"
@@ -362,7 +369,8 @@ class Station:
         self, outbox: AsyncOutbox, session: MqttSession, board: _StatusBoard, player: CuePlayer
     ) -> None:
         cfg = self.config
-        sink: ResultSink = OutboxResultSink(outbox, self.topics)
+        self.quality = QualityFeed(OutboxResultSink(outbox, self.topics))
+        sink: ResultSink = self.quality
         ports: StatusSink = board
         live: _LivePort = board
         if self.view is not None:
