@@ -7,7 +7,7 @@ Time Series for Visual Representation", MSc thesis, University of Iceland, 2013)
 in each bucket that spans the largest triangle with the point kept in the previous bucket and the
 mean of the next bucket, so visual extremes survive.
 
-Invariants (tested against a plain transcription of the thesis' algorithm):
+Invariants (tested against a plain rendering of the thesis' algorithm):
 - the first and the last point are always kept;
 - at most ``n_out`` indices are returned, strictly increasing;
 - when the input already has ``n_out`` points or fewer, every index is returned.

@@ -2,7 +2,7 @@
 
 Reference: S. Steinarsson, "Downsampling Time Series for Visual Representation", MSc thesis,
 University of Iceland, 2013, §4 (Largest-Triangle-Three-Buckets). ``_reference_lttb`` below is a
-plain, loop-by-loop transcription of that algorithm, written independently of the numpy code
+plain, loop-by-loop rendering of that algorithm, written independently of the numpy code
 under test: first and last point kept, the points between split into ``threshold - 2`` buckets
 of fractional size, and in each bucket the point forming the largest triangle with the last
 kept point and the average of the next bucket is kept (the first such point on ties).

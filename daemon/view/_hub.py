@@ -72,8 +72,9 @@ __all__ = [
 ]
 
 # Curve deltas at most 25 per second per hub: motion at 25 frames/s looks continuous (the PAL
-# video rate; common practice, no source) and a 40 ms hold keeps the added lag well inside the
-# 100 ms event-to-screen goal, while a small board encodes a tenth of the frames it receives.
+# television frame rate; common practice, no source) and a 40 ms hold keeps the added lag well
+# inside the 100 ms event-to-screen goal, while a small board encodes a tenth of the frames it
+# receives.
 CURVE_INTERVAL_S: Final = 0.04
 # Live points kept per rundown before halving: an 800-px-wide plot has fewer columns than this,
 # and a snapshot stays ~25 kB of JSON (our choice).
