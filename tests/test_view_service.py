@@ -29,7 +29,12 @@ async def test_the_service_shows_state_results_and_backlog(tmp_path: Path) -> No
         try:
             await asyncio.wait_for(view.ready.wait(), 5)
             port = view.server.port
-            snap = json.loads((await get(port, "/snapshot.json"))[2])
+            # ready means serving; the follower's first backlog read may still be under way
+            for _ in range(200):
+                snap = json.loads((await get(port, "/snapshot.json"))[2])
+                if snap["broker"]["backlog"] is not None:
+                    break
+                await asyncio.sleep(0.02)
             assert snap["jobs"] == []
             assert snap["broker"] == {"connected": False, "backlog": 0}
             # A selection made by command shows at once (the state's listener).
