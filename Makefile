@@ -46,7 +46,7 @@ demo: $(STAMP)
 	$(BIN)/clampd demo
 
 bench: $(STAMP)
-	$(BIN)/python -m pytest -p benchmark benchmarks --benchmark-only
+	$(BIN)/python -m pytest -p benchmark tests/benchmarks --benchmark-only
 
 clean:
 	rm -rf $(VENV) .typecheck build *.egg-info .pytest_cache .mypy_cache .ruff_cache .hypothesis

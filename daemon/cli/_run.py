@@ -69,7 +69,8 @@ def run(args: argparse.Namespace) -> int:
 
     # Hand the GIL over every 0.5 ms instead of CPython's 5 ms, so a worker's sample handling is
     # not held up behind a result being mapped in a thread: measured p99 of sample arrival ->
-    # stop-cue call 5.1 ms -> 2.2 ms under load (benchmarks/bench_cue_latency.py --switch-interval).
+    # stop-cue call 5.1 ms -> 2.2 ms under load
+    # (tests/benchmarks/bench_cue_latency.py --switch-interval).
     sys.setswitchinterval(0.0005)
     try:
         return asyncio.run(_main(loaded.config, args.ble_hci))

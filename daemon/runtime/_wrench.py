@@ -714,7 +714,7 @@ class WrenchWorker:
                         order, part_id=now.part_id, joint_position=now.joint_position
                     )
             # Off the loop: downsampling a long curve costs ~15 ms of Python (measured with
-            # benchmarks/bench_cue_latency.py), which would delay every wrench's cues. A
+            # tests/benchmarks/bench_cue_latency.py), which would delay every wrench's cues. A
             # rundown starting meanwhile sees ``_mapping`` and takes the joint position in
             # force once this one is stored.
             payload = await asyncio.to_thread(

@@ -22,7 +22,7 @@ reduced with LTTB (the protocol's downsampler) to ``RESULT_POINTS``.
 
 Every message carries ``seq`` (strictly increasing per hub) and ``ts_ms``: the wall-clock time
 (ms since the epoch) at which the hub received the input. A page compares it with its own
-clock to measure event-to-screen latency (``benchmarks/bench_view.py``).
+clock to measure event-to-screen latency (``tests/benchmarks/bench_view.py``).
 
 The page is read-only and these figures support, never replace, the joint designer's
 specification, local codes and licensed practice.

@@ -12,8 +12,10 @@ The whole chain is real (virtual wrench GATT server, unmodified bleak on the bum
 engine, SQLite outbox); only the radio is virtual and delivers at once, so a real radio's
 connection interval (7.5 ms and up) comes on top of these figures.
 
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_cue_latency.py --benchmark-only -s``
-or, for a longer run, ``.venv/bin/python benchmarks/bench_cue_latency.py --seconds 120
+Run:
+``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_cue_latency.py
+--benchmark-only -s``
+or, for a longer run, ``.venv/bin/python tests/benchmarks/bench_cue_latency.py --seconds 120
 [--cross-process] [--switch-interval 0.0005]``. ``--cross-process`` runs the two wrenches in
 processes of their own (``clampd simulate wrench`` over a TCP HCI hub), so this process holds
 only what a station daemon holds; in-process, the wrenches' simulation shares the event loop

@@ -1,7 +1,7 @@
 """Quality tracker speed: one result through ``QualityTracker.add`` (model and journal bytes),
 and ``clampd stats``'s journal replay.
 
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_quality.py --benchmark-only``.
+Run: ``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_quality.py --benchmark-only``.
 The runtime calls ``add`` once per finished rundown (seconds apart at a manual station), so
 the figure that matters is its cost next to a rundown, not throughput. Each ``add`` builds a
 ``QualityStats`` payload (pydantic validation) and recomputes the 50-result window's figures.
@@ -22,7 +22,7 @@ from clampd.daemon.quality import QualityTracker
 from clampd.daemon.runtime import Outbox
 from clampd.protocol import RundownResult, new_uuid7
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 EXAMPLE: dict[str, Any] = json.loads(
     (ROOT / "protocol" / "examples" / "RundownResult.json").read_text()
 )

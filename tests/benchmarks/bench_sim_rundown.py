@@ -2,7 +2,8 @@
 
 Why it matters: the virtual wrench must produce 4 kHz of samples faster than real time on one
 core (or the BLE demo falls behind), and population studies run thousands of rundowns.
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_sim_rundown.py --benchmark-only``.
+Run:
+``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_sim_rundown.py --benchmark-only``.
 """
 
 from __future__ import annotations

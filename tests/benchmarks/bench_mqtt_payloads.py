@@ -3,7 +3,9 @@
 Why it matters: every rundown ends with a curve downsample and a result serialisation on the
 station's small board, and every command from the plant network is parsed before anything
 else runs. None of this should approach the time between two rundowns (seconds).
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_mqtt_payloads.py --benchmark-only``.
+Run:
+``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_mqtt_payloads.py
+--benchmark-only``.
 """
 
 from __future__ import annotations
@@ -23,7 +25,7 @@ from clampd.protocol import (
     parse_command,
 )
 
-EXAMPLES = Path(__file__).resolve().parents[1] / "protocol" / "examples"
+EXAMPLES = Path(__file__).resolve().parents[2] / "protocol" / "examples"
 TOPICS = Topics("brackenfield/deck-assembly/line-3/st-120")
 
 

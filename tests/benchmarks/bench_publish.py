@@ -1,6 +1,7 @@
 """Result delivery speed on loopback: outbox put → broker PUBACK, and one QoS 1 publish.
 
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_publish.py --benchmark-only -s``
+Run:
+``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_publish.py --benchmark-only -s``
 (``-s`` shows the latency percentiles printed per run; they are also stored in each
 benchmark's ``extra_info``). Needs mosquitto on PATH (Debian's package).
 
@@ -33,7 +34,7 @@ from clampd.daemon.runtime import AsyncOutbox, BrokerConfig, MqttSession, Result
 from clampd.protocol import RundownResult, Topics, new_uuid7
 from clampd.simulators._broker import LocalBroker
 
-EXAMPLE = Path(__file__).resolve().parents[1] / "protocol" / "examples" / "RundownResult.json"
+EXAMPLE = Path(__file__).resolve().parents[2] / "protocol" / "examples" / "RundownResult.json"
 PREFIX = "bench/brackenfield/deck-assembly/line-3/st-120"
 
 

@@ -2,7 +2,7 @@
 
 Why it matters: a station runs several wrenches at up to 4 kHz each on a small board, and the
 decoder sits on every notification's path; it should cost a small fraction of one core.
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_decode.py --benchmark-only``.
+Run: ``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_decode.py --benchmark-only``.
 The samples/s figure is printed per benchmark (``extra_info``; 28 samples per mean call).
 Frames are packed here with ``struct`` per PROFILE.md, not with any clampd encoder.
 """

@@ -5,7 +5,7 @@ Why it matters: the simulator must outrun the fastest real wrench (4 kHz ≈ 143
 notifications/s of 28 samples, PROFILE.md) by a wide margin, or tests and the demo
 measure the simulator instead of the daemon. The source here is unpaced (span 0), so the
 figures are the link's ceiling, not a wrench's rate.
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_gatt.py --benchmark-only``.
+Run: ``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_gatt.py --benchmark-only``.
 Three figures: in-process (one loop, both ends), a `clampd simulate wrench` process
 paced at 4 kHz, and an unpaced wrench in another process behind the TCP HCI hub.
 Figures appear in ``extra_info`` (use ``--benchmark-columns`` or ``--benchmark-json``).

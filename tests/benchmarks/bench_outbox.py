@@ -1,6 +1,6 @@
 """Outbox speed on this machine: durable puts/s, mark_sent/s, pending reads, async puts/s.
 
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_outbox.py --benchmark-only``.
+Run: ``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_outbox.py --benchmark-only``.
 Every put and mark_sent is one transaction with a full fsync of the WAL (synchronous=FULL),
 so these figures are bounded by the storage's fsync latency, not by Python; on an SD card
 expect far fewer per second than on a server SSD.

@@ -3,7 +3,8 @@
 Why it matters: a study of 200 joints runs 600–1200 rundowns; the issue asks for one to finish
 well under a minute. The simulator's own sample loop dominates (the engine is fed whole frames
 and costs a few per cent), so this also tracks the simulator's speed.
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_studies.py --benchmark-only -s``.
+Run:
+``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_studies.py --benchmark-only -s``.
 """
 
 from __future__ import annotations

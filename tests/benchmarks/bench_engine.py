@@ -1,7 +1,7 @@
 """Engine throughput per strategy, fed in 22-sample frames (the BLE profile's frame at an
 ATT MTU of 185-ish; 28 is the ceiling at 247). Goal: ≤ 2 µs per sample amortised.
 
-Run: .venv/bin/python -m pytest -p benchmark benchmarks/bench_engine.py --benchmark-only
+Run: .venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_engine.py --benchmark-only
 Each round feeds one whole rundown (rest, three ratchet strokes, release) at 1 kHz; the
 figure to read is mean time / samples per round (printed as extra_info "us_per_sample").
 """

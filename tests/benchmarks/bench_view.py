@@ -1,7 +1,7 @@
 """Station view: event → page update latency and page weight, in real headless Chromium.
 
-Run: ``.venv/bin/python -m pytest -p benchmark benchmarks/bench_view.py --benchmark-only -s``
-or ``.venv/bin/python benchmarks/bench_view.py [--rundowns N] [--speed X]`` (prints JSON), or
+Run: ``.venv/bin/python -m pytest -p benchmark tests/benchmarks/bench_view.py --benchmark-only -s``
+or ``.venv/bin/python tests/benchmarks/bench_view.py [--rundowns N] [--speed X]`` (prints JSON), or
 ``--demo PARTS`` to measure the page of a running ``clampd demo`` instead of the replay rig.
 Needs Debian's ``chromium`` and Playwright for Python (the ``test`` extra).
 
@@ -30,7 +30,7 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from view_support import POSITIONS, STATION, WRENCH, play, show_station, trace
 
