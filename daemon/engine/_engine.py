@@ -125,6 +125,8 @@ _ONSET_CAPACITY = 4096
 _RUNIN_CAPACITY = 65536
 # Least-squares fits need at least this many points (2 define a line, 3 say something about it).
 _MIN_FIT_POINTS = 3
+# "Not yet fully resumed" in a rundown's per-sample stroke record: beyond every sample index.
+_NEVER = int(np.iinfo(np.intp).max)
 
 _TORQUE, _ANGLE, _YIELD = "torque", "angle", "yield"
 
@@ -220,6 +222,10 @@ class _Rundown:
         self.rc: FloatArray = np.empty(cap)  # bias-corrected rate (run-in angle before snug)
         self.pa: FloatArray = np.empty(cap)  # counted angle since the start (angle programs)
         self.turn: BoolArray = np.empty(cap, dtype=np.bool_)
+        # per sample, the first sample of its stroke at or above the level the stroke resumed
+        # from, if that is this sample or an earlier one; else (still winding up, or not
+        # turning) _NEVER: a rate window may predict only when it begins at or after this
+        self.full_from: npt.NDArray[np.intp] = np.empty(cap, dtype=np.intp)
         self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
         self.n = 0
         # accumulation state
@@ -228,10 +234,11 @@ class _Rundown:
         self.stroke_peak = 0.0
         self.resume_level = 0.0
         self.stroke_starts: list[int] = []
-        # per stroke: the level it resumed from, and its first sample at or above that level
-        # (``None`` until seen): from there on the fastener surely turns (cue prediction)
-        self.stroke_levels: list[float] = []
-        self.stroke_full: list[int | None] = []
+        # the stroke in progress (the latest one): the level it resumed from, and its first
+        # sample at or above that level (``None`` until seen): from there on the fastener
+        # surely turns (cue prediction)
+        self.stroke_level = 0.0
+        self.stroke_full: int | None = None
         self.prev_t = self.prev_T = self.prev_rc = math.nan
         self.snug: int | None = None
         self.theta_last = 0.0
@@ -255,7 +262,7 @@ class _Rundown:
             return
         while cap < n:
             cap *= 2
-        for name in ("t", "T", "th", "rc", "pa", "turn"):
+        for name in ("t", "T", "th", "rc", "pa", "turn", "full_from"):
             old = getattr(self, name)
             new = np.empty(cap, dtype=old.dtype)
             new[: self.n] = old[: self.n]
@@ -653,8 +660,10 @@ class Engine:
         if R.turning:
             if rc.min() > 0.0:
                 R.stroke_peak = max(R.stroke_peak, float(T.max()))
+                self._mark_full(R, T, n0, 0, m)
                 return True
         elif not bool(((rc > 0.0) & (self._p.resume * R.resume_level <= T)).any()):
+            R.full_from[n0 : n0 + m] = _NEVER
             return False
         out = np.empty(m, dtype=np.bool_)
         p = 0
@@ -664,6 +673,7 @@ class Engine:
                 out[p:j] = True
                 if j > p:
                     R.stroke_peak = max(R.stroke_peak, float(T[p:j].max()))
+                    self._mark_full(R, T, n0, p, j)
                 if j == m:
                     break
                 R.turning = False
@@ -673,15 +683,29 @@ class Engine:
                 level = self._p.resume * R.resume_level
                 j = p + _first((rc[p:] > 0.0) & (T[p:] >= level))
                 out[p:j] = False
+                R.full_from[n0 + p : n0 + j] = _NEVER
                 if j == m:
                     break
                 R.turning = True
                 R.stroke_peak = float(T[j])
                 R.stroke_starts.append(n0 + j)
-                R.stroke_levels.append(R.resume_level)
-                R.stroke_full.append(None)
+                R.stroke_level = R.resume_level
+                R.stroke_full = None
                 p = j
         return out
+
+    @staticmethod
+    def _mark_full(R: _Rundown, T: FloatArray, n0: int, p: int, j: int) -> None:
+        """Record ``full_from`` for chunk[p:j], samples of the stroke in progress."""
+        f = R.stroke_full
+        if f is None:
+            k = p + _first(T[p:j] >= R.stroke_level)
+            R.full_from[n0 + p : n0 + k] = _NEVER
+            if k == j:
+                return
+            f = R.stroke_full = n0 + k
+            p = k
+        R.full_from[n0 + p : n0 + j] = f
 
     def _accumulate(
         self, R: _Rundown, t: FloatArray, T: FloatArray, r: FloatArray
@@ -842,21 +866,8 @@ class Engine:
         crossed within it still gets its stop cue at the crossing."""
         a, b = n0 + p, n0 + m
         tc = t[p:m]
-        j = np.searchsorted(R.t[:b], tc - self._p.cue_window, side="right") - 1
-        ok = R.turn[a:b].copy()
-        if R.stroke_starts:
-            ss = np.asarray(R.stroke_starts, dtype=np.intp)
-            full = np.empty(len(ss), dtype=np.intp)
-            for i, s0 in enumerate(R.stroke_starts):
-                f = R.stroke_full[i]
-                if f is None and s0 < b:
-                    k = s0 + _first(R.T[s0:b] >= R.stroke_levels[i])
-                    if k < b:
-                        f = R.stroke_full[i] = k
-                full[i] = b if f is None else f
-            w = np.searchsorted(ss, np.arange(a, b), side="right") - 1
-            f_of = np.where(w >= 0, full[np.maximum(w, 0)], 0)
-            ok &= j >= f_of
+        j = R.t[:b].searchsorted(tc - self._p.cue_window, side="right") - 1
+        ok = j >= R.full_from[a:b]  # (a window never begins after its own sample)
         j = np.maximum(j, 0)
         return j, tc - R.t[j], ok
 
