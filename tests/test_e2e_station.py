@@ -22,13 +22,10 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import dataclasses
-import datetime as dt
 import json
-import os
 import signal
 import socket
-import sys
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
@@ -37,77 +34,43 @@ import pytest
 
 from clampd.daemon.runtime import NullCuePlayer, Outbox, parse_config
 from clampd.daemon.runtime._config import StationConfig
-from clampd.daemon.runtime._demo import JointGroup, Technician, load_scenario
+from clampd.daemon.runtime._demo import Technician, load_scenario
 from clampd.daemon.runtime._supervisor import Station
-from clampd.simulators import JointModel, OperatorParams, SensorParams, VirtualWrenchSensor
+from clampd.simulators import OperatorParams
+from clampd.simulators import _station_rig as station_rig
 from clampd.simulators._broker import LocalBroker
 from clampd.simulators._mes import MesStandIn, ReceivedResult
-from clampd.simulators.ble import HciHub, VirtualAir, WrenchIdentity, WrenchPeripheral
+from clampd.simulators._station_rig import (
+    WrenchRig,
+    daemon_process,
+    eventually,
+    kill_daemon,
+    station_overrides,
+    stop_daemon,
+    wait_for_status,
+    wait_until_ready,
+)
 
-CLAMPD = [sys.executable, "-m", "clampd.daemon.cli"]
 SCENARIO = load_scenario()
 GROUPS = {g.wrench_id: g for g in SCENARIO.groups}
+# The scenario's wrenches in the order of its station file, with their rated torque
+# (simulators/scenario/station.toml, torque_max).
+CAPACITY_NM = {"wr-07": 100.0, "wr-11": 40.0}
 
 
-def overrides(
-    *, prefix: str, broker: LocalBroker, addresses: dict[str, str], journal: Path
-) -> dict[str, str]:
-    """The documented CLAMPD__ overrides that point the scenario's station at this test."""
-    due = (dt.date.today() + dt.timedelta(days=180)).isoformat()
-    env = {
-        "CLAMPD__STATION__TOPIC_PREFIX": prefix,
-        "CLAMPD__BROKER__URL": broker.url,
-        "CLAMPD__OUTBOX__PATH": str(journal),
-        "CLAMPD__VIEW__PORT": "0",  # the station view on a free port: tests run side by side
-    }
-    for i, wrench_id in enumerate(("wr-07", "wr-11")):
-        env[f"CLAMPD__WRENCH__{i}__ADDRESS"] = addresses[wrench_id]
-        env[f"CLAMPD__WRENCH__{i}__CALIBRATION_DUE"] = due
-    return env
+def technician(rng: np.random.Generator) -> Technician:
+    """The demo's technician; his wrench's deflection as in the scenario's station file."""
+    return Technician(rng, deflection_deg_per_nm=0.02)
 
 
-@dataclasses.dataclass
-class Rig:
-    air: VirtualAir
-    techs: dict[str, Technician]
-    wrenches: dict[str, WrenchPeripheral]
-    rng: np.random.Generator
-
-    def hand_over(self, wrench_id: str, operator: OperatorParams | None = None) -> None:
-        group: JointGroup = GROUPS[wrench_id]
-        self.techs[wrench_id].hand_over(
-            JointModel.sample(self.rng, group.population),
-            operator or OperatorParams(steady_rate_dps=group.pull_rate_dps),
-        )
-
-
-@contextlib.asynccontextmanager
-async def virtual_wrenches(seed: int = 11) -> AsyncIterator[Rig]:
+def virtual_wrenches(seed: int = 11) -> contextlib.AbstractAsyncContextManager[WrenchRig]:
     """Both scenario wrenches on a virtual link, each with a technician waiting for work."""
-    rng = np.random.default_rng(seed)
-    async with VirtualAir() as air:
-        techs: dict[str, Technician] = {}
-        wrenches: dict[str, WrenchPeripheral] = {}
-        for wrench_id, capacity in (("wr-07", 100.0), ("wr-11", 40.0)):
-            group = GROUPS[wrench_id]
-            tech = Technician(
-                np.random.default_rng(rng.integers(2**32)), deflection_deg_per_nm=0.02
-            )
-            sensor = VirtualWrenchSensor(
-                SensorParams(serial=group.serial, torque_max_nm=capacity),
-                np.random.default_rng(rng.integers(2**32)),
-                tech,
-            )
-            wrenches[wrench_id] = await air.add_wrench(
-                sensor, name=wrench_id.upper(), identity=WrenchIdentity(serial=group.serial)
-            )
-            techs[wrench_id] = tech
-        yield Rig(air, techs, wrenches, rng)
+    return station_rig.virtual_wrenches(GROUPS, CAPACITY_NM, technician, seed=seed)
 
 
 @dataclasses.dataclass
 class Live:
-    rig: Rig
+    rig: WrenchRig
     station: Station
     mes: MesStandIn
     results: asyncio.Queue[ReceivedResult]
@@ -119,18 +82,18 @@ class Live:
             return await self.results.get()
 
 
-@pytest.fixture
-async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncIterator[Live]:
-    """The daemon in this process (the code ``clampd run`` starts), the MES beside it."""
-    async with virtual_wrenches() as rig:
-        env = overrides(
-            prefix=topic_prefix,
-            broker=broker,
-            addresses={w: p.address for w, p in rig.wrenches.items()},
-            journal=tmp_path / "journal.sqlite3",
+@contextlib.asynccontextmanager
+async def station_in_process(
+    broker: LocalBroker, prefix: str, base_dir: Path, journal: Path, seed: int = 11
+) -> AsyncIterator[Live]:
+    """The daemon in this process (the code ``clampd run`` starts), the MES beside it; the
+    station is stopped at the end of the block unless the block stopped it already."""
+    async with virtual_wrenches(seed) as rig:
+        env = station_overrides(
+            prefix=prefix, broker_url=broker.url, journal=journal, addresses=rig.addresses
         )
         config: StationConfig = parse_config(
-            SCENARIO.station_toml, env=env, base_dir=tmp_path
+            SCENARIO.station_toml, env=env, base_dir=base_dir
         ).config
         # One central per wrench, as a station with one radio per tool would have: the two
         # connects never wait for each other.
@@ -145,13 +108,9 @@ async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncI
         task = asyncio.create_task(station.run(stop), name="clampd.test.station")
         try:
             async with MesStandIn(
-                broker.host, broker.port, topic_prefix, on_result=results.put_nowait
+                broker.host, broker.port, prefix, on_result=results.put_nowait
             ) as mes:
-                await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
-                for w in ("wr-07", "wr-11"):
-                    await wait_for_status(
-                        mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
-                    )
+                await wait_until_ready(mes, rig.wrenches)
                 yield Live(rig, station, mes, results, stop, task)
         finally:
             stop.set()
@@ -159,23 +118,13 @@ async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncI
                 await task
 
 
-# Generous waits: the machine running the suite may be loaded many times over (a wait only
-# bounds a hang; a passing test never waits this long).
-async def eventually(check: Callable[[], bool], timeout_s: float = 60.0) -> None:
-    """Wait until ``check()`` holds (state with no event of its own to wait on)."""
-    async with asyncio.timeout(timeout_s):
-        while True:
-            if check():
-                return
-            await asyncio.sleep(0.02)
-
-
-async def wait_for_status(
-    mes: MesStandIn, sub: str, ok: Any, timeout_s: float = 60.0
-) -> dict[str, Any]:
-    topic = f"{mes.prefix}/{sub}"
-    await eventually(lambda: bool(ok(mes.statuses.get(topic, {}))), timeout_s)
-    return mes.statuses[topic]
+@pytest.fixture
+async def live(broker: LocalBroker, topic_prefix: str, tmp_path: Path) -> AsyncIterator[Live]:
+    """The daemon in this process, the MES beside it, the journal in the test's folder."""
+    async with station_in_process(
+        broker, topic_prefix, tmp_path, tmp_path / "journal.sqlite3"
+    ) as live:
+        yield live
 
 
 def inside_windows(result: dict[str, Any]) -> bool:
@@ -358,24 +307,6 @@ async def notify_socket(path: Path) -> AsyncIterator[list[str]]:
                 await task
 
 
-async def start_daemon(
-    config: Path, hub: HciHub, env: dict[str, str], log: Path
-) -> asyncio.subprocess.Process:
-    with log.open("ab") as f:
-        return await asyncio.create_subprocess_exec(
-            *CLAMPD,
-            "-v",
-            "run",
-            "--config",
-            str(config),
-            "--ble-hci",
-            hub.spec,
-            env={**os.environ, **env},
-            stdout=asyncio.subprocess.DEVNULL,
-            stderr=f,
-        )
-
-
 def journal_entries(path: Path) -> list[Any]:
     if not path.exists():  # never create the daemon's journal from the test
         return []
@@ -407,25 +338,17 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
     config.write_text(SCENARIO.station_toml)
     journal = tmp_path / "journal" / "outbox.sqlite3"
     log = tmp_path / "daemon.log"
-    async with virtual_wrenches(seed=5) as rig, HciHub(rig.air.link) as hub:  # type: ignore[arg-type]
-        env = overrides(
-            prefix=topic_prefix,
-            broker=broker,
-            addresses={w: p.address for w, p in rig.wrenches.items()},
-            journal=journal,
+    async with virtual_wrenches(seed=5) as rig, rig.hub() as hub:
+        env = station_overrides(
+            prefix=topic_prefix, broker_url=broker.url, journal=journal, addresses=rig.addresses
         )
         async with notify_socket(tmp_path / "notify.sock") as notes:
             env["NOTIFY_SOCKET"] = str(tmp_path / "notify.sock")
             # A 0.6 s watchdog: the daemon pets every 0.2 s while its loop turns (sd_notify(3)).
             env["WATCHDOG_USEC"] = "600000"
-            daemon = await start_daemon(config, hub, env, log)
-            try:
+            async with daemon_process(config, hub.spec, env, log) as daemon:
                 async with MesStandIn(broker.host, broker.port, topic_prefix) as mes:
-                    await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
-                    for w in ("wr-07", "wr-11"):
-                        await wait_for_status(
-                            mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
-                        )
+                    await wait_until_ready(mes, rig.wrenches)
                     assert any(n.startswith("READY=1") for n in notes)
                     ready_before_kill = len([n for n in notes if n.startswith("READY=1")])
                     rss_kib = vm_rss_kib(daemon.pid)  # two wrenches connected and streaming
@@ -439,35 +362,23 @@ async def test_result_written_but_not_published_survives_sigkill_exactly_once(
                 entries = await wait_journal(journal, lambda es: len(es) == 1)
                 assert not entries[0].sent
                 written_id = entries[0].id
-                daemon.send_signal(signal.SIGKILL)
-                assert await daemon.wait() == -signal.SIGKILL
-            finally:
-                if daemon.returncode is None:
-                    daemon.kill()
-                    await daemon.wait()
+                assert await kill_daemon(daemon) == -signal.SIGKILL
             # Back up: broker first, the MES listening, then the daemon again.
             await broker.start()
-            async with MesStandIn(broker.host, broker.port, topic_prefix) as mes:
-                daemon = await start_daemon(config, hub, env, log)
-                try:
-                    (result,) = await mes.wait_results(1, timeout_s=60)
-                    assert result.id == written_id
-                    assert result.valid, result.errors
-                    await wait_journal(journal, lambda es: all(e.sent for e in es))
-                    # A little longer: nothing else may arrive (exactly one delivery).
-                    await asyncio.sleep(1.0)
-                    assert [r.id for r in mes.results] == [written_id]
-                    daemon.send_signal(signal.SIGTERM)
-                    async with asyncio.timeout(30):
-                        assert await daemon.wait() == 0
-                    status = await wait_for_status(
-                        mes, "status", lambda s: s.get("state") == "offline"
-                    )
-                    assert status["state"] == "offline"
-                finally:
-                    if daemon.returncode is None:
-                        daemon.kill()
-                        await daemon.wait()
+            async with (
+                MesStandIn(broker.host, broker.port, topic_prefix) as mes,
+                daemon_process(config, hub.spec, env, log) as daemon,
+            ):
+                (result,) = await mes.wait_results(1, timeout_s=60)
+                assert result.id == written_id
+                assert result.valid, result.errors
+                await wait_journal(journal, lambda es: all(e.sent for e in es))
+                # A little longer: nothing else may arrive (exactly one delivery).
+                await asyncio.sleep(1.0)
+                assert [r.id for r in mes.results] == [written_id]
+                assert await stop_daemon(daemon) == 0
+                status = await wait_for_status(mes, "status", lambda s: s.get("state") == "offline")
+                assert status["state"] == "offline"
             # Both runs said READY; the watchdog was petted; only the clean stop said STOPPING.
             assert len([n for n in notes if n.startswith("READY=1")]) == ready_before_kill + 1
             assert "WATCHDOG=1" in notes

@@ -28,13 +28,13 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 
 import pytest
-from test_e2e_station import SCENARIO, Rig, eventually, overrides, virtual_wrenches, wait_for_status
+from test_e2e_station import Live, station_in_process
 
-from clampd.daemon.runtime import NullCuePlayer, Outbox, parse_config
-from clampd.daemon.runtime._supervisor import Station
+from clampd.daemon.runtime import Outbox
 from clampd.simulators import OperatorParams
 from clampd.simulators._broker import LocalBroker
-from clampd.simulators._mes import MesStandIn, ReceivedResult
+from clampd.simulators._mes import ReceivedResult
+from clampd.simulators._station_rig import eventually, wait_for_status
 
 WRENCH = "wr-07"
 STATUS = f"wrench/{WRENCH}/status"
@@ -42,17 +42,6 @@ LOSSES_IN_RUNDOWN = 3
 # A slow pull (deg/s) so that the cut lands well inside the rundown, as in the end-to-end
 # link-loss test; the scenario's technician pulls at 30 deg/s (simulators/scenario).
 SLOW_PULL_DPS = 20.0
-
-
-class _Station:
-    def __init__(
-        self, rig: Rig, station: Station, mes: MesStandIn, results: asyncio.Queue[ReceivedResult]
-    ) -> None:
-        self.rig, self.station, self.mes, self.results = rig, station, mes, results
-
-    async def next_result(self, timeout_s: float = 60.0) -> ReceivedResult:
-        async with asyncio.timeout(timeout_s):
-            return await self.results.get()
 
 
 @pytest.fixture
@@ -63,47 +52,18 @@ def journal(tmp_path: Path) -> Path:
 @pytest.fixture
 async def running(
     broker: LocalBroker, topic_prefix: str, tmp_path: Path, journal: Path
-) -> AsyncIterator[_Station]:
-    async with virtual_wrenches(seed=23) as rig:
-        env = overrides(
-            prefix=topic_prefix,
-            broker=broker,
-            addresses={w: p.address for w, p in rig.wrenches.items()},
-            journal=journal,
-        )
-        config = parse_config(SCENARIO.station_toml, env=env, base_dir=tmp_path).config
-        centrals = {w: await rig.air.add_central() for w in rig.wrenches}
-        station = Station(
-            config,
-            bleak_kwargs=lambda w: centrals[w.id].bleak_kwargs(),
-            cue_player=NullCuePlayer(),
-        )
-        stop = asyncio.Event()
-        results: asyncio.Queue[ReceivedResult] = asyncio.Queue()
-        task = asyncio.create_task(station.run(stop), name="clampd.test.station")
-        try:
-            async with MesStandIn(
-                broker.host, broker.port, topic_prefix, on_result=results.put_nowait
-            ) as mes:
-                await wait_for_status(mes, "status", lambda s: s.get("state") == "online")
-                for w in rig.wrenches:
-                    await wait_for_status(
-                        mes, f"wrench/{w}/status", lambda s: s.get("connected") is True
-                    )
-                yield _Station(rig, station, mes, results)
-                stop.set()
-                async with asyncio.timeout(30):
-                    await task
-                assert station.unsent_at_stop == 0
-        finally:
-            stop.set()
-            async with asyncio.timeout(30):
-                await task
+) -> AsyncIterator[Live]:
+    async with station_in_process(broker, topic_prefix, tmp_path, journal, seed=23) as live:
+        yield live
+        live.stop.set()
+        async with asyncio.timeout(30):
+            await live.task
+        assert live.station.unsent_at_stop == 0
 
 
 @pytest.mark.slow
 async def test_a_wrench_that_keeps_leaving_and_returning_loses_no_result(
-    running: _Station, journal: Path
+    running: Live, journal: Path
 ) -> None:
     mes, rig = running.mes, running.rig
     slot = running.station.slots[WRENCH]
