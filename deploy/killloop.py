@@ -40,32 +40,36 @@ import argparse
 import asyncio
 import contextlib
 import dataclasses
-import datetime as dt
 import json
 import logging
 import os
 import random
 import signal
 import sqlite3
-import sys
 import time
-from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from clampd.daemon.runtime._demo import JointGroup, Technician, load_scenario
-from clampd.simulators import JointModel, OperatorParams, SensorParams, VirtualWrenchSensor
+from clampd.daemon.runtime._demo import Technician, load_scenario
 from clampd.simulators._broker import LocalBroker
 from clampd.simulators._mes import MesError, MesStandIn
-from clampd.simulators.ble import HciHub, VirtualAir, WrenchIdentity, WrenchPeripheral
+from clampd.simulators._station_rig import (
+    WrenchRig,
+    daemon_process,
+    eventually,
+    kill_daemon,
+    station_overrides,
+    stop_daemon,
+    virtual_wrenches,
+    wait_for_status,
+)
 
 __all__ = ["KillLoopOptions", "kill_loop", "main", "violations"]
 
 _log = logging.getLogger("clampd.killloop")
 
-CLAMPD = [sys.executable, "-m", "clampd.daemon.cli"]
 PREFIX = "brackenfield/kill-bench/line-3/st-310"
 SCENARIO = load_scenario()
 GROUPS = {g.wrench_id: g for g in SCENARIO.groups}
@@ -79,6 +83,10 @@ POSITIONS = [f"K{i}" for i in range(1, 65)]
 _STOP_WAIT_S = 30.0
 _DRAIN_WAIT_S = 120.0
 _WILL_WAIT_S = 10.0
+# How often the plant side looks at a retained status again (our choice: a rundown takes a
+# second or so; the final life's wait looks less often, it only waits for the start).
+_POLL_S = 0.05
+_FINAL_POLL_S = 0.1
 
 
 @dataclasses.dataclass(frozen=True, slots=True, kw_only=True)
@@ -117,56 +125,9 @@ def plan_lives(options: KillLoopOptions) -> list[_Life]:
     return lives
 
 
-@dataclasses.dataclass
-class _Rig:
-    air: VirtualAir
-    techs: dict[str, Technician]
-    wrenches: dict[str, WrenchPeripheral]
-    rng: np.random.Generator
-
-    def hand_over(self, wrench_id: str) -> None:
-        group: JointGroup = GROUPS[wrench_id]
-        self.techs[wrench_id].hand_over(
-            JointModel.sample(self.rng, group.population),
-            OperatorParams(steady_rate_dps=group.pull_rate_dps),
-        )
-
-
-@contextlib.asynccontextmanager
-async def _virtual_wrenches(seed: int) -> AsyncIterator[_Rig]:
-    rng = np.random.default_rng(seed)
-    async with VirtualAir() as air:
-        techs: dict[str, Technician] = {}
-        wrenches: dict[str, WrenchPeripheral] = {}
-        for wrench_id, capacity in CAPACITY_NM.items():
-            group = GROUPS[wrench_id]
-            tech = Technician(
-                np.random.default_rng(rng.integers(2**32)), deflection_deg_per_nm=0.02
-            )
-            sensor = VirtualWrenchSensor(
-                SensorParams(serial=group.serial, torque_max_nm=capacity),
-                np.random.default_rng(rng.integers(2**32)),
-                tech,
-            )
-            wrenches[wrench_id] = await air.add_wrench(
-                sensor, name=wrench_id.upper(), identity=WrenchIdentity(serial=group.serial)
-            )
-            techs[wrench_id] = tech
-        yield _Rig(air, techs, wrenches, rng)
-
-
-def _overrides(broker: LocalBroker, addresses: dict[str, str], journal: Path) -> dict[str, str]:
-    due = (dt.date.today() + dt.timedelta(days=180)).isoformat()
-    env = {
-        "CLAMPD__STATION__TOPIC_PREFIX": PREFIX,
-        "CLAMPD__BROKER__URL": broker.url,
-        "CLAMPD__OUTBOX__PATH": str(journal),
-        "CLAMPD__VIEW__PORT": "0",  # the station view on a free port: runs side by side
-    }
-    for i, wrench_id in enumerate(CAPACITY_NM):
-        env[f"CLAMPD__WRENCH__{i}__ADDRESS"] = addresses[wrench_id]
-        env[f"CLAMPD__WRENCH__{i}__CALIBRATION_DUE"] = due
-    return env
+def _technician(rng: np.random.Generator) -> Technician:
+    # The scenario's wrenches deflect 0.02 deg per N*m (simulators/scenario/station.toml).
+    return Technician(rng, deflection_deg_per_nm=0.02)
 
 
 def check_outbox(path: Path) -> tuple[bool, list[str], int, int]:
@@ -226,17 +187,15 @@ class _Mes:
             await stack.aclose()
 
 
-async def _drive(rig: _Rig, mes: _Mes, life_no: int, selected: asyncio.Event) -> None:
+async def _drive(rig: WrenchRig, mes: _Mes, life_no: int, selected: asyncio.Event) -> None:
     """One daemon life seen from the plant floor: wait until the station says it is online,
     select a part for each wrench, then keep each technician tightening while his tool is
     connected and subscribed. Ends only by cancellation (the kill)."""
     m = mes.stand_in
     if m is None:
         return
-    topic = f"{PREFIX}/status"
-    # A peer's retained status has no event of its own to wait on.
-    while m.statuses.get(topic, {}).get("state") != "online":  # noqa: ASYNC110
-        await asyncio.sleep(0.05)
+    # A peer's retained status has no event of its own to wait on; the kill ends the wait.
+    await wait_for_status(m, "status", lambda s: s.get("state") == "online", None, _POLL_S)
     for wrench_id, group in GROUPS.items():
         mes.part += 1
         with contextlib.suppress(MesError):
@@ -248,36 +207,19 @@ async def _drive(rig: _Rig, mes: _Mes, life_no: int, selected: asyncio.Event) ->
         for wrench_id, wrench in rig.wrenches.items():
             if wrench.subscribed and not rig.techs[wrench_id].busy:
                 rig.hand_over(wrench_id)
-        await asyncio.sleep(0.05)
+        await asyncio.sleep(_POLL_S)
 
 
-async def _spawn(
-    config: Path, hub: HciHub, env: dict[str, str], log: Path
-) -> asyncio.subprocess.Process:
-    with log.open("ab") as f:
-        return await asyncio.create_subprocess_exec(
-            *CLAMPD,
-            "-v",
-            "run",
-            "--config",
-            str(config),
-            "--ble-hci",
-            hub.spec,
-            env={**os.environ, **env},
-            stdout=asyncio.subprocess.DEVNULL,
-            stderr=f,
-        )
+def _online(mes: _Mes) -> bool:
+    """The MES is connected and last saw the station say it is online."""
+    m = mes.stand_in
+    return m is not None and m.statuses.get(f"{PREFIX}/status", {}).get("state") == "online"
 
 
 def _loop_time(monotonic_s: float) -> float:
     """A ``time.monotonic()`` moment on the event loop's clock (``asyncio.timeout_at``)."""
     loop = asyncio.get_running_loop()
     return loop.time() + (monotonic_s - time.monotonic())
-
-
-async def _await_exit(proc: asyncio.subprocess.Process) -> int:
-    async with asyncio.timeout(_STOP_WAIT_S):
-        return await proc.wait()
 
 
 async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
@@ -298,10 +240,12 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
     t_start = time.monotonic()
     async with (
         LocalBroker(workdir=out / "broker", prefer="mosquitto") as broker,
-        _virtual_wrenches(options.seed) as rig,
-        HciHub(rig.air.link) as hub,  # type: ignore[arg-type]
+        virtual_wrenches(GROUPS, CAPACITY_NM, _technician, seed=options.seed) as rig,
+        rig.hub() as hub,
     ):
-        env = _overrides(broker, {w: p.address for w, p in rig.wrenches.items()}, journal)
+        env = station_overrides(
+            prefix=PREFIX, broker_url=broker.url, journal=journal, addresses=rig.addresses
+        )
         mes = _Mes(broker)
         await mes.connect()
         try:
@@ -309,40 +253,36 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                 if mes.stand_in is not None:
                     mes.stand_in.statuses.pop(f"{PREFIX}/status", None)
                 spawned = time.monotonic()
-                daemon = await _spawn(config, hub, env, log)
-                selected = asyncio.Event()
-                driver = asyncio.create_task(
-                    _drive(rig, mes, n, selected), name=f"killloop.drive-{n}"
-                )
-                broker_down = False
-                outage_at: float | None = None
-                try:
-                    kill_at = spawned + life.kill_at_s
-                    with contextlib.suppress(TimeoutError):
-                        async with asyncio.timeout_at(_loop_time(kill_at)):
-                            await selected.wait()
-                    now = time.monotonic()
-                    if life.outage_share is not None and selected.is_set() and now < kill_at:
-                        outage_at = now + life.outage_share * (kill_at - now)
-                        await asyncio.sleep(outage_at - time.monotonic())
-                        # Broker first, MES after: the MES never misses a result the broker
-                        # acknowledged to the station.
-                        await broker.stop()
-                        broker_down = True
-                        if mes.stand_in is not None:
-                            finished_stand_ins.append(mes.stand_in)
-                        await mes.close()
-                        outages += 1
-                    await asyncio.sleep(max(0.0, kill_at - time.monotonic()))
-                    daemon.send_signal(signal.SIGKILL)
-                    exit_codes.append(await _await_exit(daemon))
-                finally:
-                    driver.cancel()
-                    with contextlib.suppress(asyncio.CancelledError, MesError):
-                        await driver
-                    if daemon.returncode is None:
-                        daemon.kill()
-                        await daemon.wait()
+                async with daemon_process(config, hub.spec, env, log) as daemon:
+                    selected = asyncio.Event()
+                    driver = asyncio.create_task(
+                        _drive(rig, mes, n, selected), name=f"killloop.drive-{n}"
+                    )
+                    broker_down = False
+                    outage_at: float | None = None
+                    try:
+                        kill_at = spawned + life.kill_at_s
+                        with contextlib.suppress(TimeoutError):
+                            async with asyncio.timeout_at(_loop_time(kill_at)):
+                                await selected.wait()
+                        now = time.monotonic()
+                        if life.outage_share is not None and selected.is_set() and now < kill_at:
+                            outage_at = now + life.outage_share * (kill_at - now)
+                            await asyncio.sleep(outage_at - time.monotonic())
+                            # Broker first, MES after: the MES never misses a result the
+                            # broker acknowledged to the station.
+                            await broker.stop()
+                            broker_down = True
+                            if mes.stand_in is not None:
+                                finished_stand_ins.append(mes.stand_in)
+                            await mes.close()
+                            outages += 1
+                        await asyncio.sleep(max(0.0, kill_at - time.monotonic()))
+                        exit_codes.append(await kill_daemon(daemon, _STOP_WAIT_S))
+                    finally:
+                        driver.cancel()
+                        with contextlib.suppress(asyncio.CancelledError, MesError):
+                            await driver
                 # The tool went dark: each technician lets go of the joint in hand.
                 for tech in rig.techs.values():
                     tech.put_down()
@@ -366,26 +306,21 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                     # Let the old life's will (retained "offline") arrive before the next
                     # life's "online" is awaited, so a stale status is never mistaken for it.
                     with contextlib.suppress(TimeoutError):
-                        async with asyncio.timeout(_WILL_WAIT_S):
-                            while (  # noqa: ASYNC110
-                                mes.stand_in.statuses.get(f"{PREFIX}/status", {}).get("state")
-                                == "online"
-                            ):
-                                await asyncio.sleep(0.05)
+                        await wait_for_status(
+                            mes.stand_in,
+                            "status",
+                            lambda s: s.get("state") != "online",
+                            _WILL_WAIT_S,
+                            _POLL_S,
+                        )
             # The last life: run until the outbox is drained, then a clean stop.
             if mes.stand_in is not None:
                 mes.stand_in.statuses.pop(f"{PREFIX}/status", None)
-            daemon = await _spawn(config, hub, env, log)
             drained = False
-            try:
+            async with daemon_process(config, hub.spec, env, log) as daemon:
                 with contextlib.suppress(TimeoutError):
                     async with asyncio.timeout(_DRAIN_WAIT_S):
-                        while (  # noqa: ASYNC110
-                            mes.stand_in is None
-                            or mes.stand_in.statuses.get(f"{PREFIX}/status", {}).get("state")
-                            != "online"
-                        ):
-                            await asyncio.sleep(0.1)
+                        await eventually(lambda: _online(mes), None, _FINAL_POLL_S)
                         while True:
                             stored = await asyncio.to_thread(_stored, journal)
                             if all(sent for _, sent in stored.values()):
@@ -394,12 +329,7 @@ async def kill_loop(options: KillLoopOptions) -> dict[str, Any]:
                             await asyncio.sleep(0.2)
                 # Give the MES the last PUBLISH the daemon marked sent after its PUBACK.
                 await asyncio.sleep(1.0)
-                daemon.send_signal(signal.SIGTERM)
-                final_exit = await _await_exit(daemon)
-            finally:
-                if daemon.returncode is None:
-                    daemon.kill()
-                    await daemon.wait()
+                final_exit = await stop_daemon(daemon, _STOP_WAIT_S)
             await asyncio.sleep(1.0)
         finally:
             if mes.stand_in is not None:
