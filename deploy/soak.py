@@ -28,14 +28,11 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import contextlib
 import json
 import logging
 import os
 import re
 import resource
-import signal
-import sys
 import time
 from pathlib import Path
 from typing import Any
@@ -46,11 +43,11 @@ from clampd.daemon.runtime import NullCuePlayer, Outbox, parse_config
 from clampd.daemon.runtime._supervisor import Station, resident_memory_kib
 from clampd.protocol import Topics
 from clampd.simulators._broker import LocalBroker
+from clampd.simulators._station_rig import start_wrench_process, stop_processes
 from clampd.simulators.ble import open_central
 
 PREFIX = "brackenfield/soak-bench/line-9/st-900"
 POSITIONS = [f"J{i}" for i in range(1, 65)]  # the most a selection may hold (MQTT.md)
-_READY = re.compile(r"ready name=(\S+) address=(\S+) hci=(\S+)")
 _SENT = re.compile(r"stopping after (\d+) notifications")
 
 PROGRAM = """
@@ -91,40 +88,6 @@ def _station_toml(broker_url: str, wrenches: list[tuple[str, str]], journal: Pat
             "calibration_due = 2099-12-31",
         ]
     return "\n".join(lines) + "\n" + PROGRAM
-
-
-async def _start_wrench(
-    n: int, hci: str, rate: int, logs: Path
-) -> tuple[asyncio.subprocess.Process, str, str, str]:
-    log = (logs / f"wrench-{n}.log").open("ab")
-    proc = await asyncio.create_subprocess_exec(
-        sys.executable,
-        "-m",
-        "clampd.daemon.cli",
-        "-v",
-        "simulate",
-        "wrench",
-        "--hci",
-        hci,
-        "--name",
-        f"S-{n}",
-        "--rate",
-        str(rate),
-        "--seed",
-        str(n),
-        stdout=asyncio.subprocess.PIPE,
-        stderr=log,
-    )
-    log.close()
-    assert proc.stdout is not None
-    async with asyncio.timeout(60):
-        while True:
-            line = (await proc.stdout.readline()).decode()
-            if not line:
-                raise RuntimeError(f"wrench {n} exited before it was ready (see {logs})")
-            m = _READY.search(line)
-            if m:
-                return proc, m.group(1), m.group(2), m.group(3)
 
 
 class Mes:
@@ -211,15 +174,24 @@ async def soak(args: argparse.Namespace) -> dict[str, Any]:
         procs: list[asyncio.subprocess.Process] = []
         wrenches: list[tuple[str, str]] = []
         try:
-            first, name, address, hci = await _start_wrench(
-                1, "tcp-server:127.0.0.1:0", args.rate, logs
-            )
-            procs.append(first)
-            wrenches.append((name, address))
-            for n in range(2, args.wrenches + 1):
-                proc, name, address, _ = await _start_wrench(n, hci, args.rate, logs)
-                procs.append(proc)
-                wrenches.append((name, address))
+            hci = "tcp-server:127.0.0.1:0"  # the first wrench hosts the link, the others join
+            for n in range(1, args.wrenches + 1):
+                wrench = await start_wrench_process(
+                    "--hci",
+                    hci,
+                    "--name",
+                    f"S-{n}",
+                    "--rate",
+                    str(args.rate),
+                    "--seed",
+                    str(n),
+                    log=logs / f"wrench-{n}.log",
+                    verbose=True,
+                )
+                if n == 1:
+                    hci = wrench.hci
+                procs.append(wrench.proc)
+                wrenches.append((wrench.name, wrench.address))
             config = parse_config(_station_toml(broker.url, wrenches, journal), env={}).config
             stop = asyncio.Event()
             samples: list[tuple[float, float, float]] = []  # (t, cpu_s, rss_kib)
@@ -248,13 +220,7 @@ async def soak(args: argparse.Namespace) -> dict[str, Any]:
                 cpu_s = _cpu_s() - cpu0
                 workers = {w: s.worker.stats for w, s in station.slots.items()}
         finally:
-            for proc in procs:
-                if proc.returncode is None:
-                    proc.send_signal(signal.SIGTERM)
-            for proc in procs:
-                with contextlib.suppress(TimeoutError):
-                    async with asyncio.timeout(20):
-                        await proc.wait()
+            await stop_processes(procs, timeout_s=20.0)
     sent_notifications = 0
     for n in range(1, args.wrenches + 1):
         m = _SENT.findall((logs / f"wrench-{n}.log").read_text(errors="replace"))
