@@ -472,7 +472,7 @@ def test_internal_error_poisons_the_rundown(monkeypatch: pytest.MonkeyPatch) -> 
     def boom(*_a: object, **_k: object) -> None:
         raise RuntimeError("injected")
 
-    monkeypatch.setattr(eng, "_cue_masks", boom)
+    monkeypatch.setattr(eng, "_may_reach", boom)
     events = eng.feed(t[cut : cut + 22], T[cut : cut + 22], r[cut : cut + 22])
     fault = of(events, EngineFault)
     assert len(fault) == 1

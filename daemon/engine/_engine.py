@@ -889,6 +889,45 @@ class Engine:
         np.maximum(rate, 0.0, out=rate)
         return v, rate, ok
 
+    def _may_reach(
+        self,
+        R: _Rundown,
+        *,
+        spec: _StepSpec,
+        n0: int,
+        p: int,
+        m: int,
+        t: FloatArray,
+        h: float,
+        aim: float,
+    ) -> bool:
+        """False when no sample of chunk[p:m] can predict ``aim`` within ``h``: a scalar
+        upper bound on ``value + rate * h`` of ``_cue_masks`` over the chunk is below it.
+
+        Exact, not approximate: the bound repeats the masks' floating-point operations on
+        the extreme operands (the value's maximum; for the rate, the largest rise over the
+        shortest interval a predicting sample's window can span), and rounding is monotone,
+        so a refused chunk holds no sample whose mask would be true. A predicting sample's
+        window begins at or before ``t - cue_window``, which the subtraction may shift by
+        half an ulp of the time: the shortest interval takes two."""
+        a, b = n0 + p, n0 + m
+        t_hi = max(abs(float(t[p])), abs(float(t[m - 1])))  # time increases
+        w = self._p.cue_window
+        d_lo = w - 2.0 * math.ulp(t_hi + w)
+        if not d_lo > 0.0:
+            return True
+        # the earliest sample any window of the chunk begins at: the first sample's
+        j0 = max(int(R.t[:b].searchsorted(float(t[p]) - w, side="right")) - 1, 0)
+        if spec.kind == _TORQUE:
+            v_hi = float(R.T[a:b].max())
+            rise = v_hi - float(R.T[j0:b].min())
+        else:
+            # angles never decrease: the chunk's last sample holds the largest
+            v_hi = float(R.th[b - 1]) - R.step_base
+            rise = float(R.pa[b - 1]) - float(R.pa[j0])
+        rate_hi = max(rise, 0.0) / d_lo
+        return v_hi + rate_hi * h >= aim
+
     def _early_masks(
         self, R: _Rundown, *, n0: int, p: int, m: int, t: FloatArray
     ) -> tuple[FloatArray, FloatArray, FloatArray, BoolArray]:
@@ -1001,14 +1040,17 @@ class Engine:
                                 take(p + _first(acond), "cue_approach")
                     else:
                         aim = self._aim(R, spec)
-                        v, rate, turn = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
-                        if need_app:
-                            app = turn & (v + rate * P_.h_approach >= aim)
-                            take(p + _first(app), "cue_approach")
-                        if need_stop:
-                            q = stop_from - p
-                            stop = turn[q:] & (v[q:] + rate[q:] * P_.h_stop >= aim)
-                            take(stop_from + _first(stop), "cue_stop")
+                        # the approach horizon bounds the stop cue's too (h_approach >= h_stop)
+                        h = P_.h_approach if need_app else P_.h_stop
+                        if self._may_reach(R, spec=spec, n0=n0, p=p, m=m, t=t, h=h, aim=aim):
+                            v, rate, turn = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
+                            if need_app:
+                                app = turn & (v + rate * P_.h_approach >= aim)
+                                take(p + _first(app), "cue_approach")
+                            if need_stop:
+                                q = stop_from - p
+                                stop = turn[q:] & (v[q:] + rate[q:] * P_.h_stop >= aim)
+                                take(stop_from + _first(stop), "cue_stop")
             if not R.over and t_max >= P_.max_torque:
                 take(p + _first(T[p:] >= P_.max_torque), "over")
             if state is State.TIGHTENING and spec is not None and spec.kind != _YIELD:
