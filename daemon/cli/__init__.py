@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import logging
+import os
 import sys
 from collections.abc import Sequence
 
@@ -42,8 +43,14 @@ _COMMANDS: dict[str, tuple[str, str]] = {
 
 
 def _build_parser(argv: Sequence[str]) -> tuple[argparse.ArgumentParser, argparse.Namespace]:
-    parser = argparse.ArgumentParser(prog="clampd", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(
+        prog="clampd",
+        description="Tightening station daemon, joint planner and simulators. "
+        "Results and programs support, never replace, the joint designer's specification, "
+        "local codes and licensed practice.",
+    )
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output")
+    parser.add_argument("--version", action="version", version=f"clampd {_version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
     wanted = next((a for a in argv if not a.startswith("-")), None)
     for name, (module_name, help_text) in _COMMANDS.items():
@@ -65,8 +72,24 @@ def main(argv: Sequence[str] | None = None) -> int:
         level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
     )
     run = args._run
-    code: int = run(args)
+    try:
+        code: int = run(args)
+    except BrokenPipeError:
+        # The reader went away (`clampd results | head`): not an error of clampd's. Point
+        # stdout at /dev/null so the interpreter's final flush does not raise again.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
     return code
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("clampd")
+    except PackageNotFoundError:
+        return "unknown (not installed)"
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -8,9 +8,10 @@ valid. Environment overrides (``CLAMPD__...``) are applied as the daemon would a
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
-from clampd.daemon.runtime._config import ConfigError, load_config
+from clampd.daemon.runtime._config import ENV_PREFIX, ConfigError, load_config
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -36,6 +37,8 @@ def run(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             where = f"{problem.path}: " if problem.path else ""
             print(f"error: {args.file}: {where}{problem.message}", file=sys.stderr)
+        for hint in _hints(exc, args):
+            print(f"hint: {hint}", file=sys.stderr)
         return 2
     for warning in loaded.warnings:
         print(f"warning: {warning}", file=sys.stderr)
@@ -46,3 +49,21 @@ def run(args: argparse.Namespace) -> int:
         f"broker {cfg.broker.host}:{cfg.broker.port}{' TLS' if cfg.broker.tls else ''}"
     )
     return 0
+
+
+def _hints(exc: ConfigError, args: argparse.Namespace) -> list[str]:
+    """What to do next, for the two errors that do not come from the file's text: a value
+    set in the environment is not in the file where the reader looks for it, and a file a
+    key names may exist only on the station board."""
+    hints: list[str] = []
+    overrides = [] if args.ignore_env else sorted(n for n in os.environ if n.startswith(ENV_PREFIX))
+    if overrides:
+        hints.append(
+            f"the environment overrides {', '.join(overrides)}; --ignore-env checks the file alone"
+        )
+    if not args.no_file_checks and any(p.message.startswith("no such file") for p in exc.problems):
+        hints.append(
+            "a referenced file is missing; on a workstation without the board's files, "
+            "--no-file-checks checks everything else"
+        )
+    return hints

@@ -75,7 +75,9 @@ def run(args: argparse.Namespace) -> int:
     if args.broker is not None and not str(args.broker).startswith("mqtt://"):
         return _fail(f"--broker must look like mqtt://HOST:PORT, got {args.broker!r}")
     stamp = dt.datetime.now().strftime("%Y%m%d-%H%M%S")
-    out_dir: Path = args.out / stamp
+    # Absolute, because the station file's relative paths (the journal) are taken relative to
+    # its own folder, and every path the report prints must work from any directory.
+    out_dir: Path = args.out.absolute() / stamp
     try:
         out_dir.mkdir(parents=True, exist_ok=False)
     except OSError as exc:

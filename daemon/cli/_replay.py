@@ -173,7 +173,10 @@ def _summary(res: RundownResult, count: int) -> str:
     lines.extend(_check_line(c) for c in res.checks)
     if count > 1:
         lines.append(f"({count} rundowns in the file; the first is shown)")
-    lines.append("Results support, never replace, the joint designer's specification.")
+    lines.append(
+        "Results support, never replace, the joint designer's specification, local codes "
+        "and licensed practice."
+    )
     return "\n".join(lines)
 
 

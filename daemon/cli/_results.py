@@ -36,7 +36,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--oldest-first", action="store_true", help="list in append order")
     parser.add_argument("--wrench", help="only this wrench id")
     parser.add_argument("--part", help="only this part id")
-    parser.add_argument("--status", help="only this status (e.g. OK, NOK)")
+    parser.add_argument(
+        "--status", type=str.upper, choices=("OK", "NOK"), help="only this status (OK or NOK)"
+    )
     parser.add_argument("--program", help="only this program id")
     parser.add_argument("--unsent", action="store_true", help="only results not yet sent")
 
@@ -115,8 +117,10 @@ def _list(journal: Outbox, args: argparse.Namespace, path: Path) -> int:
     limit = args.limit
     if limit is None and args.config is not None:
         limit = load_config(args.config, check_files=False).config.journal.list_limit
+    limit = limit or 20
+    # One row more than shown tells whether the list was cut, so the reader can be told.
     entries = journal.list(
-        limit=limit or 20,
+        limit=limit + 1,
         newest_first=not args.oldest_first,
         wrench=args.wrench,
         part_id=args.part,
@@ -124,6 +128,8 @@ def _list(journal: Outbox, args: argparse.Namespace, path: Path) -> int:
         program=args.program,
         unsent_only=args.unsent,
     )
+    cut = len(entries) > limit
+    entries = entries[:limit]
     if args.json:
         print(json.dumps([_meta(e) for e in entries], indent=2))
         return 0
@@ -147,4 +153,7 @@ def _list(journal: Outbox, args: argparse.Namespace, path: Path) -> int:
     widths = [max(len(r[i]) for r in (header, *rows)) for i in range(len(header))]
     for r in (header, *rows):
         print("  ".join(cell.ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip())
+    if cut:
+        which = "oldest" if args.oldest_first else "newest"
+        print(f"(the {which} {limit} shown; --limit N shows more)", file=sys.stderr)
     return 0
