@@ -253,6 +253,9 @@ class _Rundown:
         self.stop: StopPoint | None = None
         self.yield_point: YieldPoint | None = None
         self.slope_max = -math.inf
+        # slope_max holds the slopes of the local samples before this one; the slopes are
+        # needed only once yield may be judged, and are caught up then
+        self.slope_upto = 0
         self.over = False
         self.reasons: list[Reason] = []
 
@@ -830,11 +833,17 @@ class Engine:
     ) -> tuple[FloatArray, FloatArray, BoolArray]:
         """Windowed LS slope (-inf where invalid), its running max seeded with the carried one,
         and validity, for chunk[p:m]."""
+        a = n0 + p
+        if R.slope_upto < a:  # the running maximum catches up on the samples before
+            R.slope_max = float(self._slope_span(R, R.slope_upto, a)[1][-1])
+        return self._slope_span(R, a, n0 + m)
+
+    def _slope_span(self, R: _Rundown, a: int, b: int) -> tuple[FloatArray, FloatArray, BoolArray]:
+        """``_slopes`` over local samples [a, b)."""
         P_ = self._p
-        a, b = n0 + p, n0 + m
         th = R.th[a:b]
-        lo = np.searchsorted(R.th[:b], th - P_.window, side="left")
-        S = R.P[:, a + 1 : b + 1] - R.P[:, lo]
+        lo = R.th[:b].searchsorted(th - P_.window, side="left")
+        S = R.P[:, a + 1 : b + 1] - R.P.take(lo, axis=1)
         n, sx, sy, sxx, sxy = S
         den = n * sxx
         den -= sx * sx
@@ -843,7 +852,7 @@ class Engine:
         valid = R.turn[a:b] & (n >= _MIN_FIT_POINTS) & (den > 0.0)
         if th[0] < P_.window:  # (θ never decreases: past the window at the start, past it all)
             valid &= th >= P_.window
-        seed = np.empty(m - p + 1)
+        seed = np.empty(b - a + 1)
         seed[0] = R.slope_max
         slope = seed[1:]
         slope.fill(-np.inf)
@@ -980,11 +989,11 @@ class Engine:
         m = t.shape[0]
         dt, la = self._accumulate(R, t, T, r)
         base = R.start_index + n0  # global index of chunk position 0
-        # no slope window lies wholly past snug anywhere in this frame: no slope to compute
-        slopes_possible = bool(R.th[n0 + m - 1] >= P_.window)
         gap_possible = bool(dt.max() > P_.max_gap)
-        # yield is judged only past the minimum angle; the angle never decreases
-        judge_possible = R.theta_last >= P_.min_angle
+        # yield is judged only past the minimum angle, and only where a slope window lies
+        # wholly past snug (the angle never decreases: the last sample tells for the frame);
+        # until then the slopes wait (``_slopes`` catches up their running maximum)
+        judge_possible = R.theta_last >= P_.min_angle and R.theta_last >= P_.window
         t_max = float(T.max())
         p = 0
         while p < m:
@@ -1010,11 +1019,10 @@ class Engine:
                     g0 = max(p, R.snug - n0 + 1)
                     if g0 < m:
                         take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
-                if P_.watch_yield and R.yield_point is None and slopes_possible:
+                if P_.watch_yield and R.yield_point is None and judge_possible:
                     slope, M, valid = self._slopes(R, n0, p, m)
-                    if judge_possible:
-                        judge = valid & (R.th[n0 + p : n0 + m] >= P_.min_angle) & (M > 0.0)
-                        take(p + _first(judge & (slope <= P_.fraction * M)), "yield")
+                    judge = valid & (R.th[n0 + p : n0 + m] >= P_.min_angle) & (M > 0.0)
+                    take(p + _first(judge & (slope <= P_.fraction * M)), "yield")
             if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
                 cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
                 need_app = (CueKind.APPROACH, R.step) not in R.fired
@@ -1027,17 +1035,16 @@ class Engine:
                     take(p + _first(turn & (Tr > 0.0) & reach), "cue_approach")
                 if cue_ok and (need_app or need_stop):
                     if spec.kind == _YIELD:
-                        if state is State.TIGHTENING and need_app and slopes_possible:
+                        if state is State.TIGHTENING and need_app and judge_possible:
                             if slope is None:
                                 slope, M, valid = self._slopes(R, n0, p, m)
                             assert M is not None
                             assert valid is not None
-                            if judge_possible:
-                                if judge is None:
-                                    thc = R.th[n0 + p : n0 + m]
-                                    judge = valid & (thc >= P_.min_angle) & (M > 0.0)
-                                acond = judge & (slope <= P_.approach_fraction * M)
-                                take(p + _first(acond), "cue_approach")
+                            if judge is None:
+                                thc = R.th[n0 + p : n0 + m]
+                                judge = valid & (thc >= P_.min_angle) & (M > 0.0)
+                            acond = judge & (slope <= P_.approach_fraction * M)
+                            take(p + _first(acond), "cue_approach")
                     else:
                         aim = self._aim(R, spec)
                         # the approach horizon bounds the stop cue's too (h_approach >= h_stop)
@@ -1069,6 +1076,7 @@ class Engine:
             if M is not None:
                 # running maximum of the slope through the sample handled now (or the frame end)
                 R.slope_max = float(M[min(K, m - 1) - p])
+                R.slope_upto = n0 + min(K, m - 1) + 1
             if m == K:
                 break
             k = K
