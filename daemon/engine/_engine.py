@@ -239,7 +239,6 @@ class _Rundown:
         # surely turns (cue prediction)
         self.stroke_level = 0.0
         self.stroke_full: int | None = None
-        self.prev_t = self.prev_T = self.prev_rc = math.nan
         self.snug: int | None = None
         self.theta_last = 0.0
         self.pa_last = 0.0
@@ -281,6 +280,30 @@ def _first(mask: BoolArray) -> int:
         return 0
     k = int(mask.argmax())
     return k if mask[k] else mask.shape[0]
+
+
+def _after(first: float | np.float64, x: FloatArray) -> FloatArray:
+    """``x`` shifted one place later, ``first`` in front (the predecessor of each sample)."""
+    out = np.empty(x.shape[0])
+    out[0] = first
+    out[1:] = x[:-1]
+    return out
+
+
+def _running_sum(a: FloatArray, n0: int, hi: int, inc: FloatArray, seed: float) -> float:
+    """``a[n0:hi]`` = ``seed`` plus the running sum of ``inc``, added in order; returns the
+    last. In place after the history when it ends in the seed (every frame but the first)."""
+    if n0:
+        a[n0:hi] = inc
+        v = a[n0 - 1 : hi]
+        # (the history's last sample is the seed: it ends the previous running sum)
+        np.add.accumulate(v, out=v)
+    else:
+        acc = np.empty(hi + 1)
+        acc[0] = seed
+        acc[1:] = inc
+        a[:hi] = np.add.accumulate(acc)[1:]
+    return float(a[hi - 1])
 
 
 def _as_array(x: ArrayLike, name: str) -> FloatArray:
@@ -656,18 +679,24 @@ class Engine:
         )
 
     # ---- pass 1: accumulate
-    def _turning(self, R: _Rundown, rc: FloatArray, T: FloatArray, n0: int) -> BoolArray | bool:
-        """Which samples turn the fastener; ``True``/``False`` when all or none do."""
+    def _turning(
+        self, R: _Rundown, rc: FloatArray, T: FloatArray, n0: int
+    ) -> tuple[BoolArray | bool, float]:
+        """Which samples turn the fastener (``True``/``False`` when all or none do), and the
+        frame's peak torque."""
         m = rc.shape[0]
+        t_max = float(T.max())
         # fast paths: the whole frame inside one stroke, or wholly outside one
         if R.turning:
             if rc.min() > 0.0:
-                R.stroke_peak = max(R.stroke_peak, float(T.max()))
+                R.stroke_peak = max(R.stroke_peak, t_max)
                 self._mark_full(R, T, n0, 0, m)
-                return True
-        elif not bool(((rc > 0.0) & (self._p.resume * R.resume_level <= T)).any()):
-            R.full_from[n0 : n0 + m] = _NEVER
-            return False
+                return True, t_max
+        else:
+            level = self._p.resume * R.resume_level
+            if t_max < level or not np.count_nonzero((rc > 0.0) & (level <= T)):
+                R.full_from[n0 : n0 + m] = _NEVER
+                return False, t_max
         out = np.empty(m, dtype=np.bool_)
         p = 0
         while p < m:
@@ -695,7 +724,7 @@ class Engine:
                 R.stroke_level = R.resume_level
                 R.stroke_full = None
                 p = j
-        return out
+        return out, t_max
 
     @staticmethod
     def _mark_full(R: _Rundown, T: FloatArray, n0: int, p: int, j: int) -> None:
@@ -712,89 +741,82 @@ class Engine:
 
     def _accumulate(
         self, R: _Rundown, t: FloatArray, T: FloatArray, r: FloatArray
-    ) -> tuple[FloatArray, FloatArray | None]:
-        """Pass 1; returns the sample intervals and, when torque fell below the release level
-        somewhere in the frame, the time each sample last saw torque at or above it."""
+    ) -> tuple[FloatArray, FloatArray | None, float]:
+        """Pass 1; returns the sample intervals, when torque fell below the release level
+        somewhere in the frame the time each sample last saw torque at or above it, and the
+        frame's peak torque."""
         P_ = self._p
         m = t.shape[0]
         n0 = R.n
-        R.reserve(n0 + m)
+        hi = n0 + m
+        R.reserve(hi)
         rc = r - R.bias if R.bias != 0.0 else r
-        if n0 == 0:
-            R.prev_t, R.prev_T, R.prev_rc = float(t[0]), float(T[0]), float(rc[0])
-        tt = np.empty(m + 1)
-        tt[0] = R.prev_t
-        tt[1:] = t
-        dt = tt[1:] - tt[:-1]
-        turn = self._turning(R, rc, T, n0)
+        R.t[n0:hi] = t
+        R.T[n0:hi] = T
+        R.rc[n0:hi] = rc
+        # each sample's predecessor: the history's, or at the start the first sample itself
+        dt = t - (R.t[n0 - 1 : hi - 1] if n0 else _after(t[0], t))
+        turn, t_max = self._turning(R, rc, T, n0)
+        R.turn[n0:hi] = turn
         pre = P_.track_pa  # angle cues take their rate from the angle counted since the start
         if R.snug is None:
             k = _first(P_.snug <= T)
             if k < m:
                 R.snug = n0 + k
-        R.t[n0 : n0 + m] = t
-        R.T[n0 : n0 + m] = T
-        R.turn[n0 : n0 + m] = turn
-        R.rc[n0 : n0 + m] = rc
-        counting = R.snug is not None and R.snug < n0 + m
-        inc = self._increments(R, dt, rc, T, turn) if counting or pre else None
+        counting = R.snug is not None and R.snug < hi
+        inc = self._increments(R, dt, rc, T, turn, n0=n0) if counting or pre else None
         if pre:
             assert inc is not None
-            seed = np.empty(m + 1)
-            seed[0] = R.pa_last
-            seed[1:] = inc
-            pa = np.cumsum(seed)[1:]
-            R.pa[n0 : n0 + m] = pa
-            R.pa_last = float(pa[-1])
+            R.pa_last = _running_sum(R.pa, n0, hi, inc, R.pa_last)
         if not counting:
-            R.th[n0 : n0 + m] = 0.0
+            R.th[n0:hi] = 0.0
             if P_.watch_yield:
-                R.P[:, n0 + 1 : n0 + m + 1] = R.P[:, n0 : n0 + 1]
+                R.P[:, n0 + 1 : hi + 1] = R.P[:, n0 : n0 + 1]
         else:
             assert R.snug is not None
             assert inc is not None
             s = R.snug - n0  # may be negative: snug in an earlier frame
-            acc = np.empty(m + 1)
-            acc[0] = R.theta_last
-            acc[1:] = inc
             if s >= 0:
-                acc[1 : s + 2] = 0.0  # angle is 0 at snug and counts from the next sample
-            th = np.cumsum(acc)[1:]
-            R.th[n0 : n0 + m] = th
-            R.theta_last = float(th[-1])
+                inc[: s + 1] = 0.0  # angle is 0 at snug and counts from the next sample
+            R.theta_last = _running_sum(R.th, n0, hi, inc, R.theta_last)
             if P_.watch_yield:
-                self._prefix(R, n0=n0, m=m, s=s, turn=turn, th=th, T=T)
-        R.prev_t, R.prev_T, R.prev_rc = float(t[-1]), float(T[-1]), float(rc[-1])
+                self._prefix(R, n0=n0, m=m, s=s, turn=turn)
         R.turn_last = bool(turn if isinstance(turn, bool) else turn[-1])
-        R.n = n0 + m
+        R.n = hi
         if T.min() >= P_.release:  # active throughout: the timeout cannot run in this frame
             R.last_active_t = float(t[-1])
-            return dt, None
+            return dt, None, t_max
         la_in = np.empty(m + 1)
         la_in[0] = R.last_active_t
         la_in[1:] = np.where(P_.release <= T, t, -np.inf)
         la = np.maximum.accumulate(la_in)[1:]
         R.last_active_t = float(la[-1])
-        return dt, la
+        return dt, la, t_max
 
     def _increments(
-        self, R: _Rundown, dt: FloatArray, rc: FloatArray, T: FloatArray, turn: BoolArray | bool
+        self,
+        R: _Rundown,
+        dt: FloatArray,
+        rc: FloatArray,
+        T: FloatArray,
+        turn: BoolArray | bool,
+        *,
+        n0: int,
     ) -> FloatArray:
-        """Counted angle per interval ending at each sample (see "Angle counting")."""
+        """Counted angle per interval ending at each sample (see "Angle counting"); a new
+        array the caller may change."""
         m = rc.shape[0]
-        rr = np.empty(m + 1)
-        rr[0] = R.prev_rc
-        rr[1:] = rc
-        trap = (rr[1:] + rr[:-1]) * 0.5 * dt
+        rc_prev = R.rc[n0 - 1 : n0 + m - 1] if n0 else _after(rc[0], rc)
+        trap = rc + rc_prev
+        trap *= 0.5
+        trap *= dt
         if self._p.defl != 0.0:
-            TT = np.empty(m + 1)
-            TT[0] = R.prev_T
-            TT[1:] = T
-            trap = trap - self._p.defl * (TT[1:] - TT[:-1])
+            T_prev = R.T[n0 - 1 : n0 + m - 1] if n0 else _after(T[0], T)
+            trap -= self._p.defl * (T - T_prev)
         # an interval counts when the fastener turned at either end of it (the trapezoid
         # of a stroke's last interval, rate falling to zero, is rotation too)
         if turn is True and R.turn_last:
-            return np.maximum(trap, 0.0)
+            return np.maximum(trap, 0.0, out=trap)
         if turn is False and not R.turn_last:
             return np.zeros(m)
         tb = np.empty(m + 1, dtype=np.bool_)
@@ -803,19 +825,13 @@ class Engine:
         return np.where(tb[1:] | tb[:-1], np.maximum(trap, 0.0), 0.0)
 
     @staticmethod
-    def _prefix(
-        R: _Rundown,
-        *,
-        n0: int,
-        m: int,
-        s: int,
-        turn: BoolArray | bool,
-        th: FloatArray,
-        T: FloatArray,
-    ) -> None:
-        """Running sums n, Σθ, ΣT, Σθ², ΣθT of the turning samples from snug on."""
-        vals = np.empty((5, m + 1))
-        vals[:, 0] = R.P[:, n0]
+    def _prefix(R: _Rundown, *, n0: int, m: int, s: int, turn: BoolArray | bool) -> None:
+        """Running sums n, Σθ, ΣT, Σθ², ΣθT of the turning samples from snug on, written in
+        place after the sums up to the frame (column n0)."""
+        hi = n0 + m
+        th = R.th[n0:hi]
+        T = R.T[n0:hi]
+        vals = R.P[:, n0 : hi + 1]
         w = vals[0, 1:]
         w[:] = turn
         if s > 0:
@@ -824,8 +840,7 @@ class Engine:
         np.multiply(w, T, out=vals[2, 1:])
         np.multiply(vals[1, 1:], th, out=vals[3, 1:])
         np.multiply(vals[1, 1:], T, out=vals[4, 1:])
-        np.cumsum(vals, axis=1, out=vals)
-        R.P[:, n0 + 1 : n0 + m + 1] = vals[:, 1:]
+        np.add.accumulate(vals, axis=1, out=vals)
 
     # ---- pass 2: decide
     def _slopes(
@@ -987,14 +1002,13 @@ class Engine:
         P_ = self._p
         n0 = R.n
         m = t.shape[0]
-        dt, la = self._accumulate(R, t, T, r)
+        dt, la, t_max = self._accumulate(R, t, T, r)
         base = R.start_index + n0  # global index of chunk position 0
         gap_possible = bool(dt.max() > P_.max_gap)
         # yield is judged only past the minimum angle, and only where a slope window lies
         # wholly past snug (the angle never decreases: the last sample tells for the frame);
         # until then the slopes wait (``_slopes`` catches up their running maximum)
         judge_possible = R.theta_last >= P_.min_angle and R.theta_last >= P_.window
-        t_max = float(T.max())
         p = 0
         while p < m:
             state = self._state
