@@ -408,10 +408,11 @@ class Engine:
             return []
         chk = t + T
         chk += r
-        # one reduction in the common case; the per-column search only when something is off
-        # (an overflowing but finite sum falls through the search harmlessly)
+        # one reduction in the common case (a non-finite value makes the sum of squares
+        # non-finite); the per-column search only when something is off (an overflowing but
+        # finite sum falls through the search harmlessly)
         for name, a in (
-            () if math.isfinite(chk.sum()) else (("t_s", t), ("torque_nm", T), ("rate_dps", r))
+            () if math.isfinite(chk.dot(chk)) else (("t_s", t), ("torque_nm", T), ("rate_dps", r))
         ):
             ok = np.isfinite(a)
             if not ok.all():
@@ -429,9 +430,9 @@ class Engine:
                 field="t_s",
             )
         if m > 1:
-            inc = t[1:] > t[:-1]
-            if not inc.all():
-                k = _first(~inc) + 1
+            stuck = t[1:] <= t[:-1]
+            if np.count_nonzero(stuck):
+                k = _first(stuck) + 1
                 raise SensorDataError(
                     f"t_s at sample {self._seen + k} ({t[k]!r}) does not increase",
                     index=self._seen + k,
@@ -688,7 +689,7 @@ class Engine:
         t_max = float(T.max())
         # fast paths: the whole frame inside one stroke, or wholly outside one
         if R.turning:
-            if rc.min() > 0.0:
+            if not np.count_nonzero(rc <= 0.0):
                 R.stroke_peak = max(R.stroke_peak, t_max)
                 self._mark_full(R, T, n0, 0, m)
                 return True, t_max
@@ -783,7 +784,8 @@ class Engine:
                 self._prefix(R, n0=n0, m=m, s=s, turn=turn)
         R.turn_last = bool(turn if isinstance(turn, bool) else turn[-1])
         R.n = hi
-        if T.min() >= P_.release:  # active throughout: the timeout cannot run in this frame
+        # active throughout: the timeout cannot run in this frame
+        if not np.count_nonzero(P_.release > T):
             R.last_active_t = float(t[-1])
             return dt, None, t_max
         la_in = np.empty(m + 1)
@@ -874,6 +876,19 @@ class Engine:
         np.divide(num, den, out=slope, where=valid)
         M = np.maximum.accumulate(seed)[1:]
         return slope, M, valid
+
+    def _judgeable(
+        self, R: _Rundown, *, n0: int, p: int, m: int, valid: BoolArray, M: FloatArray
+    ) -> BoolArray:
+        """Where chunk[p:m] may judge yield: a valid slope past the minimum angle under a
+        positive running maximum. Both never decrease: true at the chunk's first sample, true
+        throughout, and that mask is left out."""
+        out = valid
+        if not R.th[n0 + p] >= self._p.min_angle:
+            out = out & (R.th[n0 + p : n0 + m] >= self._p.min_angle)
+        if not M[0] > 0.0:
+            out = out & (M > 0.0)
+        return out
 
     def _rate_window(
         self, R: _Rundown, *, n0: int, p: int, m: int, t: FloatArray
@@ -1004,7 +1019,7 @@ class Engine:
         m = t.shape[0]
         dt, la, t_max = self._accumulate(R, t, T, r)
         base = R.start_index + n0  # global index of chunk position 0
-        gap_possible = bool(dt.max() > P_.max_gap)
+        gap_possible = bool(np.count_nonzero(dt > P_.max_gap))
         # yield is judged only past the minimum angle, and only where a slope window lies
         # wholly past snug (the angle never decreases: the last sample tells for the frame);
         # until then the slopes wait (``_slopes`` catches up their running maximum)
@@ -1035,7 +1050,7 @@ class Engine:
                         take(g0 + _first(dt[g0:] > P_.max_gap), "gap")
                 if P_.watch_yield and R.yield_point is None and judge_possible:
                     slope, M, valid = self._slopes(R, n0, p, m)
-                    judge = valid & (R.th[n0 + p : n0 + m] >= P_.min_angle) & (M > 0.0)
+                    judge = self._judgeable(R, n0=n0, p=p, m=m, valid=valid, M=M)
                     take(p + _first(judge & (slope <= P_.fraction * M)), "yield")
             if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
                 cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
@@ -1055,8 +1070,7 @@ class Engine:
                             assert M is not None
                             assert valid is not None
                             if judge is None:
-                                thc = R.th[n0 + p : n0 + m]
-                                judge = valid & (thc >= P_.min_angle) & (M > 0.0)
+                                judge = self._judgeable(R, n0=n0, p=p, m=m, valid=valid, M=M)
                             acond = judge & (slope <= P_.approach_fraction * M)
                             take(p + _first(acond), "cue_approach")
                     else:
