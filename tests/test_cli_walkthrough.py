@@ -170,6 +170,23 @@ def test_replay_prints_the_whole_caution(capsys: pytest.CaptureFixture[str]) -> 
     assert "licensed practice" in last
 
 
+# -- plan -------------------------------------------------------------------------------------
+
+
+def test_plan_help_names_the_default_method_and_what_program_out_needs(
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    with pytest.raises(SystemExit):
+        main(["plan", "--help"])
+    out = " ".join(capsys.readouterr().out.split())
+    assert "(default torque-angle)" in out
+    assert "--program-out: torque-angle or yield" in out
+    # And the default is what a plan without --method uses.
+    argv = "plan --thread M10 --class 8.8 --grip-mm 30 --mu-thread 0.12 --mu-head 0.12 --json"
+    assert main(argv.split()) == 0
+    assert json.loads(capsys.readouterr().out)["inputs"]["method"] == "torque-angle"
+
+
 # -- the command itself -----------------------------------------------------------------------
 
 

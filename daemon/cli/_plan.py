@@ -69,7 +69,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--method",
         choices=[m.value for m in TighteningMethod],
         default="torque-angle",
-        help="tightening method (decides αA and the proposed program)",
+        help="tightening method (default torque-angle); decides αA and the proposed program "
+        "(--program-out: torque-angle or yield)",
     )
     a("--alpha-a", type=_finite, help="tightening factor for torque control (default 1.7)")
     a("--wrench-max", help='wrench capacity, e.g. "100 N*m" or "75 ft*lbf"')
