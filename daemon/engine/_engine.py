@@ -939,9 +939,11 @@ class Engine:
         t: FloatArray,
         h: float,
         aim: float,
+        t_max: float,
     ) -> bool:
         """False when no sample of chunk[p:m] can predict ``aim`` within ``h``: a scalar
-        upper bound on ``value + rate * h`` of ``_cue_masks`` over the chunk is below it.
+        upper bound on ``value + rate * h`` of ``_cue_masks`` over the chunk is below it
+        (``t_max``: the frame's peak torque).
 
         Exact, not approximate: the bound repeats the masks' floating-point operations on
         the extreme operands (the value's maximum; for the rate, the largest rise over the
@@ -949,7 +951,7 @@ class Engine:
         so a refused chunk holds no sample whose mask would be true. A predicting sample's
         window begins at or before ``t - cue_window``, which the subtraction may shift by
         half an ulp of the time: the shortest interval takes two."""
-        a, b = n0 + p, n0 + m
+        b = n0 + m
         t_hi = max(abs(float(t[p])), abs(float(t[m - 1])))  # time increases
         w = self._p.cue_window
         d_lo = w - 2.0 * math.ulp(t_hi + w)
@@ -958,7 +960,7 @@ class Engine:
         # the earliest sample any window of the chunk begins at: the first sample's
         j0 = max(int(R.t[:b].searchsorted(float(t[p]) - w, side="right")) - 1, 0)
         if spec.kind == _TORQUE:
-            v_hi = float(R.T[a:b].max())
+            v_hi = t_max
             rise = v_hi - float(R.T[j0:b].min())
         else:
             # angles never decrease: the chunk's last sample holds the largest
@@ -1077,7 +1079,9 @@ class Engine:
                         aim = self._aim(R, spec)
                         # the approach horizon bounds the stop cue's too (h_approach >= h_stop)
                         h = P_.h_approach if need_app else P_.h_stop
-                        if self._may_reach(R, spec=spec, n0=n0, p=p, m=m, t=t, h=h, aim=aim):
+                        if self._may_reach(
+                            R, spec=spec, n0=n0, p=p, m=m, t=t, h=h, aim=aim, t_max=t_max
+                        ):
                             v, rate, turn = self._cue_masks(R, spec=spec, n0=n0, p=p, m=m, t=t)
                             if need_app:
                                 app = turn & (v + rate * P_.h_approach >= aim)
