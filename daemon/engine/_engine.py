@@ -227,6 +227,8 @@ class _Rundown:
         # turning) _NEVER: a rate window may predict only when it begins at or after this
         self.full_from: npt.NDArray[np.intp] = np.empty(cap, dtype=np.intp)
         self.P: FloatArray = np.zeros((5, cap + 1))  # prefix sums n, Σθ, ΣT, Σθ², ΣθT
+        # P holds columns 0..P_upto; the rest wait until yield may be judged (see _accumulate)
+        self.P_upto = 0
         self.n = 0
         # accumulation state
         self.turning = False
@@ -771,8 +773,6 @@ class Engine:
             R.pa_last = _running_sum(R.pa, n0, hi, inc, R.pa_last)
         if not counting:
             R.th[n0:hi] = 0.0
-            if P_.watch_yield:
-                R.P[:, n0 + 1 : hi + 1] = R.P[:, n0 : n0 + 1]
         else:
             assert R.snug is not None
             assert inc is not None
@@ -780,8 +780,11 @@ class Engine:
             if s >= 0:
                 inc[: s + 1] = 0.0  # angle is 0 at snug and counts from the next sample
             R.theta_last = _running_sum(R.th, n0, hi, inc, R.theta_last)
-            if P_.watch_yield:
-                self._prefix(R, n0=n0, m=m, s=s, turn=turn)
+            # the prefix sums serve only the yield slopes: they wait until yield may be
+            # judged (then they catch up in one pass, the same sums in the same order) and
+            # stop once it is found
+            if P_.watch_yield and R.yield_point is None and self._judge_possible(R):
+                self._prefix(R, hi)
         R.turn_last = bool(turn if isinstance(turn, bool) else turn[-1])
         R.n = hi
         # active throughout: the timeout cannot run in this frame
@@ -826,16 +829,23 @@ class Engine:
         tb[1:] = turn
         return np.where(tb[1:] | tb[:-1], np.maximum(trap, 0.0), 0.0)
 
+    def _judge_possible(self, R: _Rundown) -> bool:
+        """Yield may be judged from the last sample accumulated on: it is past the minimum
+        angle and a slope window lies wholly past snug (the angle never decreases)."""
+        return R.theta_last >= self._p.min_angle and R.theta_last >= self._p.window
+
     @staticmethod
-    def _prefix(R: _Rundown, *, n0: int, m: int, s: int, turn: BoolArray | bool) -> None:
-        """Running sums n, Σθ, ΣT, Σθ², ΣθT of the turning samples from snug on, written in
-        place after the sums up to the frame (column n0)."""
-        hi = n0 + m
+    def _prefix(R: _Rundown, hi: int) -> None:
+        """Running sums n, Σθ, ΣT, Σθ², ΣθT of the turning samples from snug on, extended in
+        place from column ``P_upto`` through ``hi``."""
+        n0 = R.P_upto
+        assert R.snug is not None
+        s = R.snug - n0
         th = R.th[n0:hi]
         T = R.T[n0:hi]
         vals = R.P[:, n0 : hi + 1]
         w = vals[0, 1:]
-        w[:] = turn
+        w[:] = R.turn[n0:hi]
         if s > 0:
             w[:s] = 0.0
         np.multiply(w, th, out=vals[1, 1:])
@@ -843,6 +853,7 @@ class Engine:
         np.multiply(vals[1, 1:], th, out=vals[3, 1:])
         np.multiply(vals[1, 1:], T, out=vals[4, 1:])
         np.add.accumulate(vals, axis=1, out=vals)
+        R.P_upto = hi
 
     # ---- pass 2: decide
     def _slopes(
@@ -858,6 +869,7 @@ class Engine:
     def _slope_span(self, R: _Rundown, a: int, b: int) -> tuple[FloatArray, FloatArray, BoolArray]:
         """``_slopes`` over local samples [a, b)."""
         P_ = self._p
+        assert R.P_upto >= b, "prefix sums behind the slopes"
         th = R.th[a:b]
         lo = R.th[:b].searchsorted(th - P_.window, side="left")
         S = R.P[:, a + 1 : b + 1] - R.P.take(lo, axis=1)
@@ -1025,7 +1037,7 @@ class Engine:
         # yield is judged only past the minimum angle, and only where a slope window lies
         # wholly past snug (the angle never decreases: the last sample tells for the frame);
         # until then the slopes wait (``_slopes`` catches up their running maximum)
-        judge_possible = R.theta_last >= P_.min_angle and R.theta_last >= P_.window
+        judge_possible = self._judge_possible(R)
         p = 0
         while p < m:
             state = self._state
