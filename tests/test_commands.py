@@ -222,13 +222,21 @@ async def test_payload_reply_address_for_mqtt311_clients(rig: Rig) -> None:
 
 
 async def test_retained_commands_are_refused_and_not_applied(rig: Rig, broker: LocalBroker) -> None:
-    """A retained lock would run again on every reconnect. The live copy of a retained
-    publish reaches existing subscribers with RETAIN 0, a fresh subscription gets the stored
-    copy with RETAIN 1 (MQTT 5.0 §3.3.1.3): the station refuses that one."""
+    """A retained lock would run again on every reconnect. A fresh subscription gets the
+    stored copy with RETAIN 1 (MQTT 5.0 §3.3.1.3): the station refuses that one. The live
+    copy reaches existing subscribers with RETAIN 0 unless the subscription asked for Retain
+    As Published (§3.8.3.1), which the station does over MQTT 5: it refuses the live copy
+    too. Over MQTT 3.1.1 (no such option) the live copy runs once."""
     await rig.send("lock", _cmd(correlation_id="live"), retain=True)
     live, _ = await rig.reply()
-    assert live.status is ReplyStatus.OK
-    rig.state.unlock()
+    if rig.session.protocol == "5":
+        assert live.status is ReplyStatus.ERROR
+        assert live.code is ErrorCode.BAD_TOPIC
+        assert "retained" in (live.text or "")
+        assert not rig.state.is_locked("w-blue")
+    else:
+        assert live.status is ReplyStatus.OK
+        rig.state.unlock()
     fresh = MqttSession(
         BrokerConfig(url=broker.url),
         rig.topics,

@@ -65,6 +65,7 @@ from paho.mqtt.client import MQTT_CLEAN_START_FIRST_ONLY
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
+from paho.mqtt.subscribeoptions import SubscribeOptions
 from pydantic import BaseModel
 
 from clampd.daemon.runtime._backoff import next_delay
@@ -614,7 +615,18 @@ class MqttSession:
         return True
 
     async def _announce(self, client: aiomqtt.Client, level: ProtocolLevel) -> None:
-        await client.subscribe(self.topics.command_filter(), qos=1)
+        if level == "5":
+            # Retain As Published (MQTT 5.0 §3.8.3.1): a command published retained reaches
+            # the station with its retain flag set even while the station is connected, so
+            # it is refused at once instead of being carried out live and then replayed at
+            # every reconnect. MQTT 3.1.1 has no such option: there only the stored copy
+            # shows the flag.
+            await client.subscribe(
+                self.topics.command_filter(),
+                options=SubscribeOptions(qos=1, retainAsPublished=True),
+            )
+        else:
+            await client.subscribe(self.topics.command_filter(), qos=1)
         self._lost = asyncio.Event()
         self._client = client
         self.state.protocol = level
