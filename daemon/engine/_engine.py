@@ -26,6 +26,20 @@ Every quantity is an elementwise operation or a sequential running sum/maximum s
 carried state (``np.cumsum`` and ``ufunc.accumulate`` add in order), so feeding one sample at a
 time or a whole frame yields bit-identical values, events and indices.
 
+Work left out
+-------------
+A frame is a few dozen samples, so the cost is the count of numpy calls per frame, not their
+length. Work whose answer is known is skipped, and only where skipping cannot change a bit:
+a cue's masks are not built when a scalar bound, made of the masks' own floating-point
+operations on the extreme operands (rounding is monotone), shows no sample can reach the aim;
+the yield slopes and their prefix sums wait until yield may be judged (past the minimum angle)
+and then catch up in one pass (the same sums in the same order: running sums and maxima do not
+care how their input is split), and stop once yield is found; a mask that a never-decreasing
+quantity already passes at the chunk's first sample is not built. State that every frame
+would rebuild from the history is kept as the samples arrive instead (where each stroke
+resumed fully, the predecessors of the frame's first sample). The sample-exact tests guard all
+of it like the rest.
+
 Angle counting (ratchet wrenches)
 ---------------------------------
 A sample turns the fastener while the bias-corrected rate is positive; a stroke ends when the
