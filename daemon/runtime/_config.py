@@ -49,6 +49,7 @@ __all__ = [
     "CALIBRATION_DUE_SOON_DAYS",
     "ENV_PREFIX",
     "SERVICE_GROUP",
+    "AlarmsConfig",
     "BrokerConfig",
     "CalibrationState",
     "ConfigError",
@@ -368,6 +369,45 @@ class ViewConfig(_Section):
             raise ValueError("must be an IP address such as 127.0.0.1 or 0.0.0.0") from None
 
 
+class AlarmsConfig(_Section):
+    """When the station raises and clears its alarms (``clampd.daemon.runtime._alarms``).
+
+    Each raise level has a clear level apart from it, so a reading near a threshold raises
+    one alarm and clears it once, not over and over.
+    """
+
+    # At or below 15 % a wrench still has charge to finish the job in hand before its
+    # battery is swapped (our choice).
+    battery_low_pct: int = Field(default=15, ge=1, le=99)
+    # Cleared at or above 25 %: ten points above the raise level, wider than the few points
+    # a cell's reading moves under load, so the alarm does not flap (our choice).
+    battery_ok_pct: int = Field(default=25, ge=2, le=100)
+    # A link down this long raises wrench_lost; the link's reconnect loop starts at 0.5 s
+    # and doubles (_backoff.py), so a wrench carried briefly out of range and back within
+    # half a minute raises nothing (our choice).
+    wrench_lost_after_s: float = Field(default=30.0, ge=0.1, le=86_400.0)
+    # Three NOK in a row of one wrench on one program: with a NOK rate of 1 % that happens by
+    # chance once in a million runs of three, so it points at the tool, the parts or the
+    # program (our choice).
+    nok_streak: int = Field(default=3, ge=2, le=1000)
+    # Unsent results beyond this count, or the oldest unsent older than the age below,
+    # raise outbox_backlog; cleared once the outbox is drained. 500 is hours of a hand
+    # station's work (a rundown every 10 to 30 s, common practice, no source).
+    outbox_backlog_count: int = Field(default=500, ge=1)
+    # Five minutes: well past a broker restart and the MQTT reconnect back-off's 30 s cap
+    # (_backoff.py), so only an outage someone should look at raises it (our choice).
+    outbox_backlog_age_s: float = Field(default=300.0, ge=1.0, le=30 * 86_400.0)
+    # calibration_due_soon this many days ahead of the due date, like the config check
+    # and the wrench status (CALIBRATION_DUE_SOON_DAYS; common practice, no source).
+    calibration_due_soon_days: int = Field(default=CALIBRATION_DUE_SOON_DAYS, ge=0, le=365)
+
+    @pydantic.model_validator(mode="after")
+    def _clear_above_raise(self) -> Self:
+        if self.battery_ok_pct <= self.battery_low_pct:
+            raise ValueError("battery_ok_pct must be above battery_low_pct (hysteresis)")
+        return self
+
+
 class StationConfig(_Section):
     """The whole station file."""
 
@@ -379,6 +419,7 @@ class StationConfig(_Section):
     outbox: OutboxConfig = OutboxConfig()
     journal: JournalConfig = JournalConfig()
     view: ViewConfig = ViewConfig()
+    alarms: AlarmsConfig = AlarmsConfig()
 
     @pydantic.field_validator("wrench")
     @classmethod
