@@ -422,11 +422,18 @@ class Station:
         return self.state.status(at, software_version=self.software_version)
 
     def _on_change(self, change: StateChange) -> None:
-        """State listener: hand aborts to the worker, republish the status on progress."""
+        """State listener: hand aborts to the worker, republish the wrench status on a lock
+        or unlock and the station status on progress."""
         if change.kind == "abort" and change.wrench_id is not None:
             slot = self.slots.get(change.wrench_id)
             if slot is not None and self.state.take_abort(change.wrench_id) is not None:
                 slot.worker.request_abort()
+        elif change.kind in ("lock", "unlock"):
+            # The lock is part of each wrench's retained status; a station-wide change
+            # (wrench_id None) touches every wrench.
+            for slot in self.slots.values():
+                if change.wrench_id in (None, slot.config.id):
+                    slot.worker.refresh_status()
         elif change.kind == "joint":
             # Commands republish the status themselves; a finished joint does not.
             self._status_changed.set()

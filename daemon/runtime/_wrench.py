@@ -381,6 +381,13 @@ class WrenchWorker:
         self._abort = True
         return True
 
+    def refresh_status(self) -> None:
+        """Offer the wrench status again when something in it changed outside the link (a
+        lock or unlock by command); unchanged, nothing is offered. The worker's own re-checks
+        run on link events only, which a disconnected or busily streaming wrench does not
+        give it in time."""
+        self._publish_status()
+
     @property
     def in_rundown(self) -> bool:
         """True while a rundown is in progress."""
