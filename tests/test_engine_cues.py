@@ -258,6 +258,69 @@ def test_cue_aim_is_validated() -> None:
         EngineSettings(cue_aim=-0.1)
 
 
+# ------------------------------------------------------------------ pace cue
+def free_run_trace(omega: float) -> tuple[F, F, F, F]:
+    """A free run-down (no torque) at ``omega`` deg/s for 0.6 s, the head touches (torque to
+    10 N·m over 5°, snug), then 1.5 N·m/deg to 40° past snug at the same rate; release."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(0.6, omega, 0.0, 0.6 * omega)
+    b.seg(5.0 / omega, omega, 10.0, 5.0)
+    b.seg(40.0 / omega, omega, 70.0, 40.0)
+    b.seg(0.05, 0.0, 0.0, 0.0)
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    return b.arrays()
+
+
+def test_pace_cue_slows_a_brisk_pull_before_the_joint_is_touched() -> None:
+    """A 30° step leaves 0.75 s of approach horizon only below 30/0.75 = 40 deg/s; at 90 deg/s
+    the approach cue fires once the free run has gone faster than that for the rate window
+    (50 ms), long before the head touches, and is the step's only approach cue."""
+    t, T, r, _ = free_run_trace(90.0)
+    events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
+    app = cues(events, CueKind.APPROACH)
+    assert len(app) == 1
+    first_fast = int(np.flatnonzero(r >= 30.0 / H_APPROACH)[0])
+    # closed form: 50 samples at 1 kHz (one more when the float sum of the times falls short)
+    assert abs(app[0].index - (first_fast + round(0.05 * FS))) <= 1
+    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    assert app[0].index < started.index
+    # the earliest the target can come: one step angle away at the pull's rate
+    assert app[0].predicted_crossing_t_s == pytest.approx(app[0].t_s + 30.0 / 90.0)
+    result = next(e.result for e in events if isinstance(e, RundownFinished))
+    assert [c.kind for c in result.cues].count(CueKind.APPROACH) == 1
+    assert result.cues[0].index == app[0].index
+
+
+def test_no_pace_cue_for_an_unhurried_pull_or_a_torque_program() -> None:
+    """At 30 deg/s (under the 40 deg/s pace) the approach cue comes inside the rundown, from
+    the prediction; a torque program has no angle step to pace."""
+    t, T, r, _ = free_run_trace(30.0)
+    events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
+    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    app = cues(events, CueKind.APPROACH)
+    assert len(app) == 1
+    assert app[0].index > started.index
+    t, T, r, _ = free_run_trace(120.0)
+    events = Engine(prog(strategy="torque", target_torque=50.0), SETTINGS).feed(t, T, r)
+    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
+
+
+@pytest.mark.parametrize("frame", [1, 7, 22])
+def test_pace_cue_is_sample_exact_whatever_the_framing(frame: int) -> None:
+    t, T, r, _ = free_run_trace(90.0)
+    program = prog(strategy="torque-angle", target_angle=30.0)
+    whole = Engine(program, SETTINGS).feed(t, T, r)
+    eng = Engine(program, SETTINGS)
+    parts: list[Event] = []
+    for i in range(0, len(t), frame):
+        parts.extend(eng.feed(t[i : i + frame], T[i : i + frame], r[i : i + frame]))
+    assert [(type(e).__name__, getattr(e, "index", None)) for e in parts] == [
+        (type(e).__name__, getattr(e, "index", None)) for e in whole
+    ]
+
+
 # ------------------------------------------------------------------ re-arming
 def test_stop_cue_rearms_when_the_operator_pulls_again_short_of_the_target() -> None:
     """30° step at 30 deg/s: the technician stops at 24° after the cue, lets go, pulls again
@@ -270,7 +333,7 @@ def test_stop_cue_rearms_when_the_operator_pulls_again_short_of_the_target() -> 
     b.seg(0.8, 30.0, 10.0 + 1.5 * 24.0, 24.0)  # 24° past snug
     b.seg(0.2, -200.0, 0.5, 0.0)  # let go, swing back
     b.seg(0.3, 0.0, 0.5, 0.0)
-    b.seg(0.05, 40.0, 46.0, 0.0)  # wind-up to the level where the first stroke ended
+    b.seg(0.1, 10.0, 46.0, 0.0)  # wind-up at the new pull's pace, fastener still
     b.seg(1.0, 10.0, 46.0 + 15.0, 10.0)  # 10 deg/s to 34°
     b.seg(0.05, 0.0, 0.0, 0.0)
     b.seg(0.3, 0.0, 0.0, 0.0)
@@ -278,14 +341,44 @@ def test_stop_cue_rearms_when_the_operator_pulls_again_short_of_the_target() -> 
     events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
     stops = cues(events, CueKind.STOP)
     assert len(stops) == 2
-    second_stroke = int(np.flatnonzero(r == 10.0)[0])
-    assert stops[0].index < second_stroke <= stops[1].index
+    second_pull = int(np.flatnonzero(r == 10.0)[0])
+    assert stops[0].index < second_pull <= stops[1].index
     stop = first_stop(events)
     assert stops[1].t_s == pytest.approx(stop.t_s - H_STOP, abs=2 * DT + 1e-9)
     assert stop.cue_lead_s == pytest.approx(H_STOP, abs=2 * DT + 1e-9)
     result = next(e.result for e in events if isinstance(e, RundownFinished))
     assert result.status is Status.OK
     assert [c.kind for c in result.cues].count(CueKind.STOP) == 2
+
+
+def test_rearmed_stop_cue_predicts_from_the_handle_before_the_fastener_turns() -> None:
+    """The technician lets go 1° short of a 30° step and pulls again at 12 deg/s. What is
+    left (1°) takes less than latency + reaction (0.25 s × 12 deg/s = 3°) even counting the
+    0.1 s wind-up, so the cue fires at the first forward sample of the new pull (the gyro
+    sees the handle move at once), ahead of the fastener turning; a prediction from the
+    counted angle could only fire once the fastener turns and a rate window lies behind."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(0.05, 60.0, 1.5, 0.0)
+    b.seg((10.0 - 1.5) / 45.0, 30.0, 10.0, (10.0 - 1.5) / 1.5)  # to snug at 10 N·m
+    b.seg(29.0 / 30.0, 30.0, 10.0 + 1.5 * 29.0, 29.0)  # 29° past snug
+    let_go = len(b.t)
+    b.seg(0.2, -200.0, 0.5, 0.0)  # let go, swing back
+    b.seg(0.3, 0.0, 0.5, 0.0)
+    pull = len(b.t)
+    b.seg(0.1, 12.0, 53.5, 0.0)  # wind-up, fastener still
+    turns = len(b.t)
+    b.seg(0.5, 12.0, 53.5 + 9.0, 6.0)
+    b.seg(0.05, 0.0, 0.0, 0.0)
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    t, T, r, _ = b.arrays()
+    events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
+    stops = cues(events, CueKind.STOP)
+    assert len(stops) == 2
+    assert stops[0].index < let_go
+    assert stops[1].index == pull  # the first sample of the new pull (12 deg/s > rest level)
+    assert stops[1].index < turns
+    assert first_stop(events).index > turns
 
 
 def test_no_rearm_without_a_new_stroke() -> None:

@@ -82,9 +82,16 @@ point is ``cue_aim`` of the way from the target to the upper limit of the window
 the last step (a person's stop scatters around the aim; short of the target the rundown stays
 open). An angle step's approach cue may come before snug: the time to snug is extrapolated
 from the torque trend and the angle counted since the start gives the rate, so a fast pull on
-a short step still hears it in time to slow down; a stop cue never comes before snug. A stop
-cue is re-armed by the next stroke that starts after it (the technician let go short of the
-target and pulls again). No cue fires later than the crossing of the target itself.
+a short step still hears it in time to slow down; a stop cue never comes before snug. Earlier
+still, the pace cue: while idle, before the joint is touched, nothing tells how far snug is,
+so the earliest the first angle step can end is its own aim point away; a pull that has gone
+faster than (that aim ÷ the approach horizon) for ``cue_rate_window_s`` hears that step's
+approach cue at once (on a short step a brisk pull leaves less than a reaction time between
+seating and target). A stop cue is re-armed when the technician let go short of the target
+and drives the wrench again: a torque step at the next stroke, predicting as before; an angle
+step once the handle halted and then moves forward again, predicting from the handle's rate
+(the gyro sees the handle at once, before the ratchet's play and the wind-up are taken up),
+less the wind-up still to take up. No cue fires later than the crossing of the target itself.
 """
 
 from __future__ import annotations
@@ -210,6 +217,30 @@ class _Params:
         # the rate its cues predict with
         self.track_pa = any(st.kind == _ANGLE for st in self.steps)
         self.proofing = Limits.of(p)
+        self.rest_rate = s.rest_rate_dps
+        # The pace cue (see "Cueing"): before the joint is touched nothing tells how far away
+        # snug is, so the earliest the first angle step can end is its own aim point away; a
+        # pull faster than that aim over the approach horizon hears the approach cue at once.
+        self.pace_dps = math.inf
+        if self.early and self.h_approach > 0.0:
+            self.pace_dps = self.aim_point(0, self.steps[0], 0.0) / self.h_approach
+
+    def aim_point(self, step: int, spec: _StepSpec, base: float) -> float:
+        """Where the stop cue aims for a step that began at ``base``: ``cue_aim`` of the way
+        from the target to the upper limit of the window that judges it (last step only),
+        inside that window."""
+        if self.aim == 0.0 or step != len(self.steps) - 1:
+            return spec.target
+        if spec.kind == _TORQUE:
+            w, base = self.torque_window, 0.0
+        elif spec.kind == _ANGLE:
+            w = self.angle_window
+        else:
+            return spec.target
+        if w is None or w[1] - base <= spec.target:
+            return spec.target
+        lo, hi = w[0] - base, w[1] - base
+        return min(max(spec.target + self.aim * (hi - spec.target), lo), hi)
 
 
 class _Rundown:
@@ -264,6 +295,8 @@ class _Rundown:
         self.step_base = 0.0
         self.fired: set[tuple[CueKind, int]] = set()
         self.stop_cue_at: dict[int, int] = {}  # step -> local index of its latest stop cue
+        self.rearm: tuple[int, int, int] = (-1, 0, 0)  # see Engine._stop_from
+        self.rearm_level = 0.0  # peak torque of the stroke that carried the last stop cue
         self.cues: list[CueRecord] = []
         self.stop: StopPoint | None = None
         self.yield_point: YieldPoint | None = None
@@ -370,6 +403,11 @@ class Engine:
         # raw rate over the interval ending at it, and that interval; bias removed at the start
         self._run_chunks: list[tuple[FloatArray, FloatArray, FloatArray]] = []
         self._run_count = 0
+        # pace cue (see "Cueing"): start time of the idle stretch pulling faster than the pace
+        # (None: the last idle sample was slower), and the cue once fired, until a rundown
+        # starts and takes it as its first step's approach cue
+        self._pace_from: float | None = None
+        self._pace_cue: CueRecord | None = None
         self._run_prev: tuple[float, float] | None = None  # (t, raw rate) of the last idle sample
         self._run_last_move = -math.inf  # time of the last idle sample not at rest
 
@@ -408,6 +446,8 @@ class Engine:
         self._state = next_state(self._state, Input.SELECT_PROGRAM)
         self._program = program
         self._p = _Params(program, self._settings)
+        self._pace_from = None
+        self._pace_cue = None
 
     def feed(self, t_s: ArrayLike, torque_nm: ArrayLike, rate_dps: ArrayLike) -> list[Event]:
         """Consume one frame or one sample; return the events it caused."""
@@ -560,15 +600,18 @@ class Engine:
         m = t.shape[0]
         while i < m:
             if self._r is None:
-                j = self._idle(t[i:], T[i:], r[i:])
+                j = self._idle(t[i:], T[i:], r[i:], self._seen + i, events)
                 if j is None:
                     return
                 i += j
                 self._start(self._seen + i, float(t[i]), float(T[i]), events)
             i += self._active(t[i:], T[i:], r[i:], events)
 
-    def _idle(self, t: FloatArray, T: FloatArray, r: FloatArray) -> int | None:
-        """Keep idle samples for the bias estimate; return where a rundown starts, if it does."""
+    def _idle(
+        self, t: FloatArray, T: FloatArray, r: FloatArray, gi0: int, events: list[Event]
+    ) -> int | None:
+        """Keep idle samples for the bias estimate; return where a rundown starts, if it does.
+        ``gi0`` is the global index of ``t[0]``."""
         m = t.shape[0]
         start = self._settings.start_torque_nm
         pos = 0
@@ -576,11 +619,55 @@ class Engine:
             pos = _first(start > T)
             if pos == m:
                 self._keep_idle(t, T, r)
+                self._pace(t, r, gi0, events)
                 return None
             self._armed = True
         k = pos + _first(T[pos:] >= start)
         self._keep_idle(t[:k], T[:k], r[:k])
+        self._pace(t[:k], r[:k], gi0, events)
         return None if k == m else k
+
+    def _pace(self, t: FloatArray, r: FloatArray, gi0: int, events: list[Event]) -> None:
+        """The pace cue: the first idle sample that ends ``cue_rate_window_s`` of pulling
+        faster than ``_Params.pace_dps`` fires the first angle step's approach cue, once
+        between rundowns.
+
+        On a short angle step a brisk pull leaves less than a reaction time between the joint
+        seating and the target, so the technician must be slowed before the joint is
+        touched; the raw rate suffices (a gyro bias of a few deg/s is small beside the pace).
+        """
+        m = t.shape[0]
+        P_ = self._p
+        if m == 0 or self._pace_cue is not None or P_.pace_dps == math.inf:
+            return
+        fast = r >= P_.pace_dps
+        if not fast.any():
+            self._pace_from = None
+            return
+        was = np.empty(m + 1, dtype=np.bool_)
+        was[0] = self._pace_from is not None
+        was[1:] = fast
+        seed = np.empty(m + 1)
+        seed[0] = -math.inf if self._pace_from is None else self._pace_from
+        seed[1:] = np.where(fast & ~was[:-1], t, -math.inf)
+        since = np.maximum.accumulate(seed)[1:]
+        k = _first(fast & (t - since >= P_.cue_window))
+        self._pace_from = float(since[-1]) if fast[-1] else None
+        if k == m:
+            return
+        tk = float(t[k])
+        spec = P_.steps[0]
+        pred = tk + P_.aim_point(0, spec, 0.0) / float(r[k])
+        cue = CueRecord(
+            kind=CueKind.APPROACH, step=0, index=gi0 + k, t_s=tk, predicted_crossing_t_s=pred
+        )
+        self._pace_cue = cue
+        self._pace_from = None
+        events.append(
+            CueFired(
+                kind=CueKind.APPROACH, step=0, index=gi0 + k, t_s=tk, predicted_crossing_t_s=pred
+            )
+        )
 
     def _keep_idle(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
         """Keep the idle samples taken at rest (the only ones that show the gyro's bias) and
@@ -688,7 +775,12 @@ class Engine:
                 if int(sel.sum()) >= s.bias_min_samples:
                     bias = float(np.mean(self._rest_r[sel]))
         self._state = next_state(self._state, Input.START)
-        self._r = _Rundown(index, bias, t0, T0, self._take_runin(bias))
+        self._r = R = _Rundown(index, bias, t0, T0, self._take_runin(bias))
+        if self._pace_cue is not None:  # it was this rundown's first approach cue
+            R.fired.add((CueKind.APPROACH, 0))
+            R.cues.append(self._pace_cue)
+            self._pace_cue = None
+        self._pace_from = None
         events.append(
             RundownStarted(
                 index=index, t_s=t0, torque_nm=T0, gyro_bias_dps=bias, program_id=self._program.id
@@ -1009,35 +1101,59 @@ class Engine:
         return Tk, Tr, om, ok
 
     def _aim(self, R: _Rundown, spec: _StepSpec) -> float:
-        """Where the stop cue aims for this step: ``cue_aim`` of the way from the target to the
-        upper limit of the window that judges it (last step only), inside that window."""
-        P_ = self._p
-        if P_.aim == 0.0 or R.step != len(P_.steps) - 1:
-            return spec.target
-        if spec.kind == _TORQUE:
-            w, base = P_.torque_window, 0.0
-        elif spec.kind == _ANGLE:
-            w, base = P_.angle_window, R.step_base
-        else:
-            return spec.target
-        if w is None or w[1] - base <= spec.target:
-            return spec.target
-        lo, hi = w[0] - base, w[1] - base
-        return min(max(spec.target + P_.aim * (hi - spec.target), lo), hi)
+        """Where the stop cue aims for the step in progress (see ``_Params.aim_point``)."""
+        return self._p.aim_point(R.step, spec, R.step_base)
 
-    def _stop_armed_from(self, R: _Rundown, n0: int, p: int, m: int) -> int:
-        """First position in chunk[p:m] where this step's stop cue may fire, or ``m``.
+    def _stop_from(self, R: _Rundown, spec: _StepSpec, n0: int, p: int, m: int) -> tuple[int, bool]:
+        """Where in chunk[p:m] this step's stop cue is armed from (``m``: nowhere), and whether
+        it then predicts from the handle's rate (a re-armed angle step) rather than from the
+        driven quantity's trend.
 
-        Once fired it is re-armed by the next stroke that starts after it: the technician
-        let go short of the target and pulls again until the tool says done."""
+        Once fired, the cue is re-armed when the technician let go short of the target and
+        drives the wrench again. A torque step re-arms at the next stroke and predicts as
+        before. An angle step re-arms once the handle halted (rate no longer forward) and
+        then moves forward again (rate above the rest level, or a new stroke), even if the
+        fastener never turned in between: the rest of the way is short, and a prediction
+        from the counted angle needs the ratchet's play, the wind-up and a rate window behind
+        it, a reaction time too late.
+        The gyro sees the handle from its first motion, so the cue predicts from that (see
+        ``_active``).
+        """
         last = R.stop_cue_at.get(R.step)
         if last is None:
-            return p
-        ss = R.stroke_starts
-        w = int(np.searchsorted(np.asarray(ss, dtype=np.intp), last, side="right"))
-        if w == len(ss) or ss[w] >= n0 + m:
-            return m
-        return max(p, ss[w] - n0)
+            return p, False
+        b = n0 + m
+        if spec.kind != _ANGLE:
+            ss = R.stroke_starts
+            w = int(np.searchsorted(np.asarray(ss, dtype=np.intp), last, side="right"))
+            if w == len(ss) or ss[w] >= b:
+                return m, False
+            return max(p, ss[w] - n0), False
+        # resumable scan: (cue it refers to, phase, cursor); phases: 0 seek the halt (the
+        # handle no longer driven forward), 1 seek the drive again, 2 found at the cursor
+        key, phase, c = R.rearm
+        if key != last:
+            phase, c = 0, last
+        if phase == 0:
+            c += _first(R.rc[c:b] <= 0.0)
+            if c < b:
+                phase = 1
+                # the wind-up to take up again: the peak of the stroke the halt ended
+                i = (
+                    int(
+                        np.searchsorted(np.asarray(R.stroke_starts, dtype=np.intp), c, side="right")
+                    )
+                    - 1
+                )
+                s0 = R.stroke_starts[i] if i >= 0 else c
+                R.rearm_level = float(R.T[s0 : c + 1].max())
+        if phase == 1:
+            c += _first((R.rc[c:b] > self._p.rest_rate) | R.turn[c:b])
+            phase = 2 if c < b else 1
+        R.rearm = (last, phase, c)
+        if phase != 2:
+            return m, True
+        return max(p, c - n0), True
 
     def _active(self, t: FloatArray, T: FloatArray, r: FloatArray, events: list[Event]) -> int:
         R = self._r
@@ -1083,8 +1199,18 @@ class Engine:
             if state in (State.RUNDOWN, State.TIGHTENING) and spec is not None:
                 cue_ok = spec.kind == _TORQUE or state is State.TIGHTENING
                 need_app = (CueKind.APPROACH, R.step) not in R.fired
-                stop_from = self._stop_armed_from(R, n0, p, m)
+                stop_from, by_handle = self._stop_from(R, spec, n0, p, m)
                 need_stop = stop_from < m
+                if cue_ok and need_stop and by_handle:
+                    # re-armed angle step: the handle's rate predicts, less the wind-up still
+                    # to take up before the fastener turns (the ratchet's play is unknown)
+                    q, b0 = stop_from, n0 + stop_from
+                    rcq = R.rc[b0 : n0 + m]
+                    wind = np.maximum(R.rearm_level - R.T[b0 : n0 + m], 0.0) * P_.defl
+                    reach = R.th[b0 : n0 + m] - R.step_base + rcq * P_.h_stop - wind
+                    hit = (rcq > P_.rest_rate) & (reach >= self._aim(R, spec))
+                    take(q + _first(hit), "cue_stop")
+                    need_stop = False
                 if state is State.RUNDOWN and spec.kind == _ANGLE and need_app:
                     # an angle step's approach cue before snug (a stop cue never comes before)
                     Tk, Tr, om, turn = self._early_masks(R, n0=n0, p=p, m=m, t=t)
@@ -1209,7 +1335,7 @@ class Engine:
                     assert spec is not None
                     # no cue comes later than the crossing itself (late cues: predicted = actual)
                     self._cue(R, kind=CueKind.APPROACH, gi=gi, tk=tk, pred=tk, events=events)
-                    if self._stop_armed_from(R, n0, k, k + 1) == k:
+                    if self._stop_from(R, spec, n0, k, k + 1)[0] == k:
                         self._cue(R, kind=CueKind.STOP, gi=gi, tk=tk, pred=tk, events=events)
                     self._step_done(R, spec=spec, gi=gi, tk=tk, Tk=float(T[k]), events=events)
                 case _:
