@@ -1207,8 +1207,8 @@ class Engine:
                     q, b0 = stop_from, n0 + stop_from
                     rcq = R.rc[b0 : n0 + m]
                     wind = np.maximum(R.rearm_level - R.T[b0 : n0 + m], 0.0) * P_.defl
-                    reach = R.th[b0 : n0 + m] - R.step_base + rcq * P_.h_stop - wind
-                    hit = (rcq > P_.rest_rate) & (reach >= self._aim(R, spec))
+                    ahead = R.th[b0 : n0 + m] - R.step_base + rcq * P_.h_stop - wind
+                    hit = (rcq > P_.rest_rate) & (ahead >= self._aim(R, spec))
                     take(q + _first(hit), "cue_stop")
                     need_stop = False
                 if state is State.RUNDOWN and spec.kind == _ANGLE and need_app:
