@@ -22,11 +22,13 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import tomllib
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pytest
 
 from clampd.daemon.runtime import NullCuePlayer, parse_config
 from clampd.daemon.runtime._supervisor import Station
@@ -166,3 +168,222 @@ async def test_lock_and_unlock_republish_the_retained_wrench_status(
             assert reply["status"] == "ok", reply
             for w in (PRESENT, AWAY):
                 await wait_for_status(mes, status_topic(w), lambda s: s["locked"] is False, 10)
+
+
+# -- 2. the sensor profile is checked at load time and served under clampd run -------------
+
+PROFILES = Path(__file__).resolve().parents[1] / "protocol" / "profiles"
+
+
+def write_station(tmp_path: Path, **wrench: str) -> Path:
+    path = tmp_path / "station.toml"
+    path.write_text(
+        station_toml(
+            "harrow-vale/frame-shop/fs-40",
+            "mqtt://127.0.0.1:1883",
+            tmp_path / "outbox.sqlite3",
+            wrench_table(PRESENT, "C0:DE:00:00:40:0A", **wrench),
+        ),
+        encoding="utf-8",
+    )
+    return path
+
+
+@pytest.mark.parametrize(
+    ("profile", "expected"),
+    [
+        ('"nope"', "no built-in profile of that name; known: ['bench-stick']"),
+        ('"sensors/missing.toml"', "cannot read the file"),
+        ('"sensors/broken.toml"', "not valid TOML"),
+    ],
+    ids=["unknown-name", "missing-file", "not-toml"],
+)
+def test_an_unusable_profile_is_refused_by_check_config_and_by_run_with_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], profile: str, expected: str
+) -> None:
+    from clampd.daemon.cli import main
+
+    (tmp_path / "sensors").mkdir()
+    (tmp_path / "sensors" / "broken.toml").write_text("name = [", encoding="utf-8")
+    path = write_station(tmp_path, profile=profile)
+
+    assert main(["check-config", "--ignore-env", str(path)]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith(f"error: {path}: wrench[0].profile: ")
+    assert expected in err[0]
+
+    assert main(["run", "--config", str(path)]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1, err
+    assert err[0].startswith("clampd run: ")
+    assert "wrench[0].profile" in err[0]
+    assert expected in err[0]
+    assert not (tmp_path / "outbox.sqlite3").exists()  # nothing started, nothing written
+
+
+def test_a_profile_file_is_found_next_to_the_station_file(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from clampd.daemon.cli import main
+
+    (tmp_path / "sensors").mkdir()
+    (tmp_path / "sensors" / "stick.toml").write_text(
+        (PROFILES / "bench-stick.toml").read_text(encoding="utf-8"), encoding="utf-8"
+    )
+    path = write_station(tmp_path, profile='"sensors/stick.toml"')
+    monkeypatch.chdir(tmp_path / "sensors")  # not where the station file is
+    assert main(["check-config", "--ignore-env", str(path)]) == 0
+    assert ": OK" in capsys.readouterr().out
+    loaded = parse_config(path.read_text(encoding="utf-8"), env={}, base_dir=tmp_path)
+    assert loaded.config.wrench[0].profile == str(tmp_path / "sensors" / "stick.toml")
+    # On a workstation without the board's files, the file is not required.
+    (tmp_path / "sensors" / "stick.toml").unlink()
+    assert main(["check-config", "--ignore-env", "--no-file-checks", str(path)]) == 0
+    assert main(["check-config", "--ignore-env", str(path)]) == 2
+
+
+# The bench-stick logger as a GATT server (protocol/profiles/bench-stick.toml): its own service
+# and samples UUIDs, no info record, no control characteristic. 10 samples per notification
+# (7 + 10 × 6 = 67 bytes, inside the 244-byte payload of the 247-byte MTU the central asks for).
+STICK_ADDRESS = "C0:DE:00:00:40:5C"
+STICK_SAMPLES_PER_FRAME = 10
+STICK_PERIOD_US = 2000  # the profile's fixed 500 Hz
+# The demo pull: 0.3 s still, a free run-down at 0.4 N*m turning 60 deg/s for 0.5 s, then the
+# head seats and torque climbs 1.5 N*m per degree to a 24 N*m peak (the technician overshoots
+# the 22 N*m target a little), is held 0.1 s and released. Invented values for the demo.
+STICK_PEAK_NM = 24.0
+
+
+def stick_pull() -> tuple[np.ndarray[Any, np.dtype[np.float64]], np.ndarray[Any, Any]]:
+    """Torque (N*m) and rate (deg/s, x y z) of one pull, 2 ms apart, then rest."""
+    dt_s = STICK_PERIOD_US / 1e6
+    still = int(0.3 / dt_s)
+    free = int(0.5 / dt_s)
+    climb = int(STICK_PEAK_NM / 1.5 / 60.0 / dt_s)  # degrees to the peak / rate
+    hold = int(0.1 / dt_s)
+    rest = int(1.0 / dt_s)
+    torque = np.concatenate(
+        [
+            np.zeros(still),
+            np.full(free, 0.4),
+            np.linspace(0.4, STICK_PEAK_NM, climb),
+            np.full(hold, STICK_PEAK_NM),
+            np.linspace(STICK_PEAK_NM, 0.0, 25),
+            np.zeros(rest),
+        ]
+    )
+    rate_z = np.concatenate(
+        [np.zeros(still), np.full(free + climb, 60.0), np.zeros(hold + 25 + rest)]
+    )
+    rate = np.zeros((torque.shape[0], 3))
+    rate[:, 2] = rate_z
+    return torque, rate
+
+
+@contextlib.asynccontextmanager
+async def bench_stick(air: VirtualAir, pull: asyncio.Event) -> AsyncIterator[list[int]]:
+    """Serve the bench stick on the virtual link until the block ends; it streams at rest
+    and plays ``stick_pull`` once ``pull`` is set. Yields the list of notification sizes sent."""
+    from bumble import gatt, hci
+    from bumble.device import Device
+    from bumble.host import Host
+    from bumble.transport.common import AsyncPipeSink
+
+    from clampd.simulators._encoder import DeclarativeEncoder
+    from clampd.simulators.ble import VirtualController
+
+    spec = (PROFILES / "bench-stick.toml").read_text(encoding="utf-8")
+    encoder = DeclarativeEncoder(spec)
+    profile = tomllib.loads(spec)
+    assert air.link is not None
+    ctrl = VirtualController("bench-stick", link=air.link)
+    device = Device(
+        name="bench-stick", address=hci.Address(STICK_ADDRESS), host=Host(ctrl, AsyncPipeSink(ctrl))
+    )
+    samples = gatt.Characteristic(
+        profile["samples_uuid"],
+        gatt.Characteristic.Properties.NOTIFY,
+        gatt.Characteristic.READABLE,
+        b"",
+    )
+    device.add_service(gatt.Service(profile["service_uuid"], [samples]))
+    sent: list[int] = []
+
+    async def stream() -> None:
+        torque, rate = stick_pull()
+        n = STICK_SAMPLES_PER_FRAME
+        seq, clock_us, k = 0, 0, 0
+        while True:
+            if pull.is_set() and k + n <= torque.shape[0]:
+                t, r = torque[k : k + n], rate[k : k + n]
+                k += n
+            else:
+                t, r = np.zeros(n), np.zeros((n, 3))
+            frame = encoder.encode(
+                sequence=seq,
+                timestamp_us=clock_us,
+                period_us=STICK_PERIOD_US,
+                torque_nm=t,
+                rate_dps=r,
+            )
+            await device.notify_subscribers(samples, frame)
+            sent.append(len(frame))
+            seq, clock_us = seq + 1, clock_us + n * STICK_PERIOD_US
+            await asyncio.sleep(n * STICK_PERIOD_US / 1e6)
+
+    await device.power_on()
+    await device.start_advertising(auto_restart=True)
+    task = asyncio.create_task(stream(), name="test.bench-stick")
+    try:
+        yield sent
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+        with contextlib.suppress(Exception):
+            await device.power_off()
+
+
+async def test_a_wrench_on_a_declarative_profile_is_served_under_the_daemon(
+    broker: LocalBroker, topic_prefix: str, tmp_path: Path
+) -> None:
+    pull = asyncio.Event()
+    async with VirtualAir() as air, bench_stick(air, pull) as sent:
+        text = station_toml(
+            topic_prefix,
+            broker.url,
+            tmp_path / "outbox.sqlite3",
+            wrench_table(PRESENT, STICK_ADDRESS, profile='"bench-stick"'),
+        )
+        results: list[dict[str, Any]] = []
+        async with running_station(broker, topic_prefix, text, air.bleak_kwargs()) as (
+            station,
+            mes,
+        ):
+            await wait_for_status(mes, status_topic(PRESENT), lambda s: s.get("connected") is True)
+            reply = await mes.select_program("hub-m8", "HUB-0007", ["spoke-flange-1"])
+            assert reply["status"] == "ok", reply
+            pull.set()
+            (result,) = await mes.wait_results(1, timeout_s=30)
+            assert result.valid, result.errors
+            assert result.payload is not None
+            results.append(result.payload)
+            stats = station.slots[PRESENT].worker.stats
+            assert stats.frames_corrupt == 0
+            assert stats.cue_writes_failed == 0  # no control characteristic: none attempted
+        assert sent
+        (payload,) = results
+        assert payload["wrench"]["wrench_id"] == PRESENT
+        assert payload["joint_position"] == "spoke-flange-1"
+        # Torque travelled as i32 hundredths of an in*lbf (1 in*lbf = 0.112 984 829 N*m,
+        # NIST SP 811 appendix B.8): the peak comes back within one count of the pull's.
+        assert payload["peak_torque_nm"] == pytest.approx(STICK_PEAK_NM, abs=0.01 * 0.113)
+        # From snug (6 N*m) to the peak the pull turns (24 - 6) / 1.5 = 12 degrees, read
+        # from the stick's one gyro axis (z, hundredths of a rad/s; a 2 ms sample of slack).
+        assert payload["final_angle_deg"] == pytest.approx(12.0, abs=0.5)
+        # The pull climbs 1.5 N*m per degree; the joint rate fit finds it (a least-squares
+        # slope of a straight line, within the ends' rounding).
+        assert payload["joint_rate_nm_per_deg"] == pytest.approx(1.5, rel=0.02)
+        # Inside both windows with no fault: OK (MQTT.md, OK exactly when reasons is empty).
+        assert payload["status"] == "OK", payload["reasons"]

@@ -43,7 +43,15 @@ from typing import Annotated, Any, Literal, Self
 import pydantic
 from pydantic import BaseModel, ConfigDict, Field, SecretStr
 
-from clampd.protocol import Kind, UnitError, parse_quantity
+from clampd.protocol import (
+    DeclarativeProfile,
+    Kind,
+    ProfileError,
+    UnitError,
+    load_builtin_profile,
+    load_profile,
+    parse_quantity,
+)
 
 __all__ = [
     "CALIBRATION_DUE_SOON_DAYS",
@@ -68,6 +76,7 @@ __all__ = [
     "check_broker_transport",
     "load_config",
     "parse_config",
+    "sensor_profile",
 ]
 
 ENV_PREFIX = "CLAMPD__"
@@ -283,7 +292,8 @@ class WrenchConfig(_Section):
 
     id: str = Field(pattern=_ID)
     address: str
-    # "v1" (protocol/PROFILE.md) or the name or path of a declarative sensor profile.
+    # "v1" (protocol/PROFILE.md), the name of a shipped declarative sensor profile, or the
+    # path of one ending in ".toml" (relative to the station file); checked at load time.
     profile: str = Field(default="v1", min_length=1)
     axis: Literal["+x", "-x", "+y", "-y", "+z", "-z"] = "+z"
     # Rated capacity; accepts units ("150 N*m", "110 ft*lbf").
@@ -557,6 +567,42 @@ def _check_programs(config: StationConfig) -> list[ConfigProblem]:
     return problems
 
 
+def sensor_profile(profile: str) -> DeclarativeProfile | None:
+    """The declarative sensor profile a wrench's ``profile`` names; None for "v1".
+
+    A name ending in ".toml" is a file, any other name one of the shipped profiles.
+    ``ProfileError`` when it cannot be loaded: the station file's (or the profile author's)
+    fault. ``parse_config`` has loaded every configured one already, so after a successful
+    load this raises only if the file changed since.
+    """
+    if profile == "v1":
+        return None
+    if profile.endswith(".toml"):
+        return load_profile(Path(profile))
+    return load_builtin_profile(profile)
+
+
+def _check_profiles(config: StationConfig, check_files: bool) -> list[ConfigProblem]:
+    # A profile that cannot be loaded would otherwise surface only when the daemon builds
+    # the wrench's worker, as a crash after the file was declared fine.
+    problems = []
+    for i, w in enumerate(config.wrench):
+        if not check_files and w.profile.endswith(".toml"):
+            continue  # a file that may exist only on the station board
+        try:
+            sensor_profile(w.profile)
+        except ProfileError as exc:
+            for path, message in exc.problems:
+                where = f" ({path})" if path else ""
+                problems.append(
+                    ConfigProblem(
+                        path=f"wrench[{i}].profile",
+                        message=f"{w.profile!r}{where}: {message} (or 'v1', the clampd profile)",
+                    )
+                )
+    return problems
+
+
 def _resolve_paths(data: dict[str, Any], base_dir: Path) -> None:
     """Make file paths in the raw data relative to the config file's directory."""
 
@@ -570,6 +616,10 @@ def _resolve_paths(data: dict[str, Any], base_dir: Path) -> None:
         fix(broker, key)
     fix(data.get("cues"), "wav_dir")
     fix(data.get("outbox"), "path")
+    wrenches = data.get("wrench")
+    for table in wrenches if isinstance(wrenches, list) else []:
+        if isinstance(table, dict) and str(table.get("profile", "")).endswith(".toml"):
+            fix(table, "profile")
 
 
 def _check_files(config: StationConfig) -> list[ConfigProblem]:
@@ -701,7 +751,11 @@ def parse_config(
         config = StationConfig.model_validate(data)
     except pydantic.ValidationError as exc:
         raise ConfigError(_problems_from(exc), source) from None
-    problems = (_check_files(config) if check_files else []) + _check_programs(config)
+    problems = (
+        (_check_files(config) if check_files else [])
+        + _check_programs(config)
+        + _check_profiles(config, check_files)
+    )
     if problems:
         raise ConfigError(problems, source)
     warnings = _warnings(

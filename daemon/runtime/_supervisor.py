@@ -60,7 +60,7 @@ from typing import Any, Final, Protocol, TypeVar
 from clampd.daemon.runtime._backoff import next_delay
 from clampd.daemon.runtime._ble import BleakWrenchLink, LinkRefusedError
 from clampd.daemon.runtime._commands import CommandHandler
-from clampd.daemon.runtime._config import StationConfig, WrenchConfig
+from clampd.daemon.runtime._config import StationConfig, WrenchConfig, sensor_profile
 from clampd.daemon.runtime._cues import CuePlayer, make_player
 from clampd.daemon.runtime._flusher import ResultFlusher
 from clampd.daemon.runtime._mqtt import BrokerUnavailable, MqttSession
@@ -77,7 +77,7 @@ from clampd.daemon.runtime._wrench import (
     engine_settings,
 )
 from clampd.daemon.view import ViewService
-from clampd.protocol import Judgement, StationStatus, Topics, WrenchStatus
+from clampd.protocol import SAMPLES_UUID, Judgement, StationStatus, Topics, WrenchStatus
 
 __all__ = [
     "FINISH_GRACE_S",
@@ -385,8 +385,16 @@ class Station:
             self.view.watch_state(self.state)
         for wcfg in cfg.wrench:
             kwargs = self._bleak_kwargs(wcfg) if self._bleak_kwargs is not None else None
+            # A declarative profile names its own samples characteristic and has no info
+            # record or control characteristic (validated when the config was loaded).
+            profile = sensor_profile(wcfg.profile)
             link = BleakWrenchLink(
-                wcfg.address, wrench_id=wcfg.id, allowed=allowed, bleak_kwargs=kwargs
+                wcfg.address,
+                wrench_id=wcfg.id,
+                allowed=allowed,
+                bleak_kwargs=kwargs,
+                samples_uuid=SAMPLES_UUID if profile is None else profile.samples_uuid,
+                v1_control=profile is None,
             )
             worker = WrenchWorker(
                 wcfg,

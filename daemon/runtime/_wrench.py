@@ -74,7 +74,7 @@ from clampd.daemon.runtime._ble import (
     Notification,
 )
 from clampd.daemon.runtime._config import CalibrationState as ConfigCalibration
-from clampd.daemon.runtime._config import WrenchConfig, calibration_state
+from clampd.daemon.runtime._config import WrenchConfig, calibration_state, sensor_profile
 from clampd.daemon.runtime._cues import CuePlayer, CueSound, LatencyLog
 from clampd.daemon.runtime._outbox import OutboxError
 from clampd.daemon.runtime._results import (
@@ -106,8 +106,6 @@ from clampd.protocol import (
     axis_rate,
     decode_frame,
     encode_cue,
-    load_builtin_profile,
-    load_profile,
     new_uuid7,
 )
 
@@ -335,17 +333,16 @@ class WrenchWorker:
         self._sign: Literal[1, -1] = 1 if axis[0] == "+" else -1
         self._decode: Callable[[bytes], SampleFrame]
         self._new_checker: Callable[[], SequenceChecker]
-        if config.profile == "v1":
+        profile = sensor_profile(config.profile)
+        if profile is None:
             self._decode = decode_frame
             self._new_checker = SequenceChecker
         else:
-            profile = (
-                load_profile(config.profile)
-                if config.profile.endswith(".toml")
-                else load_builtin_profile(config.profile)
-            )
             self._decode = profile.decode
             self._new_checker = profile.checker
+        # A sensor on a declarative profile has no control characteristic: its cues are the
+        # station's speaker only (a write would be refused every time).
+        self._tool_cues = profile is None
         self.engine: engine.Engine | None = None
         self.stats = WorkerStats()
         self.cue_latency = LatencyLog()
@@ -816,7 +813,7 @@ class WrenchWorker:
 
     def _tool_cue(self, pattern: CuePattern) -> None:
         queue = self._cue_queue
-        if queue is None:
+        if queue is None or not self._tool_cues:
             return
         data = encode_cue(pattern, CUE_DURATION_MS[pattern])
         if queue.full():
