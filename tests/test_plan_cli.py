@@ -94,6 +94,36 @@ def test_yield_method_proposes_a_yield_program(
     assert prog["yield_fraction"] == 0.5
 
 
+def test_torque_method_writes_a_torque_program(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "t.toml"
+    data = _json(capsys, "--method", "torque", "--program-out", str(path), "--wrench-max", "50 N*m")
+    text = path.read_text(encoding="utf-8")
+    prog = tomllib.loads(text)["program"]
+    planned = data["program"]
+    assert isinstance(planned, dict)
+    assert prog["strategy"] == "torque"
+    # VDI 2230 Part 1 Table A1: M10 8.8, μ 0.12 -> MA 48 N·m (from memory).
+    assert planned["target_torque_nm"] == pytest.approx(48, abs=0.8)
+    assert prog["target_torque"] == f"{planned['target_torque_nm']:.2f} N*m"
+    assert "target_angle" not in prog
+    assert all(c in text for c in CAUTIONS)
+    assert planned["notes"]
+    # 48 N·m on a 50 N·m wrench is 97 % of its capacity: a warning in the file and the JSON.
+    warnings = data["warnings"]
+    assert isinstance(warnings, list)
+    assert any("keep it at or below 80%" in w for w in warnings)
+    assert "# WARNING: target is 97% of the wrench maximum" in text
+
+
+def test_torque_table_names_the_target_torque(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main([*BASE, *MU, "--method", "torque"]) == 0
+    out = capsys.readouterr().out
+    assert "torque: snug, target torque 48.46 N·m" in out
+    assert "NOTE: target torque 48.46 N·m is MA" in out
+
+
 @pytest.mark.parametrize(
     ("args", "needle"),
     [
@@ -104,7 +134,18 @@ def test_yield_method_proposes_a_yield_program(
         ([*BASE, *MU, "--wrench-max", "100 furlong"], "torque"),
         ([*BASE, *MU, "--wrench-max", "30 deg"], "torque"),
         ([*BASE, "--mu-thread", "0.12", "--mu-head", "12"], "mu_head"),
-        ([*BASE, *MU, "--method", "torque", "--program-out", "x.toml"], "--program-out"),
+        # A bare number could be N·m or ft·lbf: refused, with the format expected.
+        ([*BASE, *MU, "--wrench-max", "100"], 'has no unit: give it as e.g. "100 N*m" or'),
+        ([*BASE, *MU, "--wrench-max", "30 deg"], '"75 ft*lbf"'),
+        # An angle step under 1° (a tiny grip, low utilisation): the error names the way out.
+        (
+            [
+                *["plan", "--thread", "M24", "--class", "8.8", "--grip-mm", "1"],
+                *["--mu-thread", "0.3", "--mu-head", "0.3", "--utilisation", "0.2"],
+                *["--mu-thread-max", "0.5", "--mu-head-max", "0.5"],
+            ],
+            "use torque control (--method torque)",
+        ),
     ],
 )
 def test_bad_input_exits_2_with_one_line(

@@ -13,6 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from clampd.daemon.engine import parse_program
 from clampd.daemon.planner import (
     CAUTIONS,
     PROGRAM_KEYS,
@@ -99,7 +100,7 @@ def test_stainless_has_no_proof_stress_and_says_so() -> None:
 def _quantities(prog: dict[str, object]) -> dict[str, object]:
     out: dict[str, object] = {}
     for key, value in prog.items():
-        if isinstance(value, str) and key in ("snug_torque", "max_torque"):
+        if isinstance(value, str) and key in ("snug_torque", "max_torque", "target_torque"):
             out[key] = parse_quantity(value, Kind.TORQUE)
         elif key == "target_angle":
             assert isinstance(value, str)
@@ -113,7 +114,7 @@ def _quantities(prog: dict[str, object]) -> dict[str, object]:
     return out
 
 
-@pytest.mark.parametrize("strategy", ["torque-angle", "yield"])
+@pytest.mark.parametrize("strategy", ["torque", "torque-angle", "yield"])
 def test_program_file_has_only_engine_keys_and_sane_windows(strategy: str) -> None:
     plan = plan_joint(M10)
     text = program_toml(plan, propose_program(plan, strategy))
@@ -133,6 +134,13 @@ def test_program_file_has_only_engine_keys_and_sane_windows(strategy: str) -> No
         assert aw[1] <= plan.angle_to_yield_range_deg[0] + 0.01
         assert tw[0] <= plan.torque_nm <= tw[1]
         assert "yield_fraction" not in prog
+    elif strategy == "torque":
+        # The target is MA; the angle window spans the angles to the window's torques.
+        assert tw[0] < q["target_torque"] < tw[1]
+        assert q["target_torque"] == pytest.approx(plan.torque_nm, abs=0.005)
+        assert "target_angle" not in prog
+        assert "yield_fraction" not in prog
+        assert aw[1] <= plan.angle_to_yield_range_deg[1] + 0.01
     else:
         assert prog["yield_fraction"] == 0.5
         assert "target_angle" not in prog
@@ -148,7 +156,7 @@ def test_program_loads_through_the_engine() -> None:
     if parse_program is None:
         pytest.skip("the engine does not export parse_program yet")
     plan = plan_joint(M10)
-    for strategy in ("torque-angle", "yield"):
+    for strategy in ("torque", "torque-angle", "yield"):
         prop = propose_program(plan, strategy)
         program = parse_program(program_toml(plan, prop))
         assert program.id == prop.id
@@ -210,7 +218,7 @@ def test_soft_tapped_part_warns_about_stripping() -> None:
     mu_g=st.floats(0.06, 0.25),
     mu_k=st.floats(0.06, 0.25),
     spread=st.floats(0.0, 0.1),
-    strategy=st.sampled_from(["torque-angle", "yield"]),
+    strategy=st.sampled_from(["torque", "torque-angle", "yield"]),
 )
 def test_any_valid_joint_gives_an_ordered_plan_and_a_loadable_program(
     *,
@@ -250,6 +258,8 @@ def test_any_valid_joint_gives_an_ordered_plan_and_a_loadable_program(
     assert prop.torque_window_nm[0] < prop.torque_window_nm[1] < prop.max_torque_nm
     assert prop.angle_window_deg[0] < prop.angle_window_deg[1]
     assert prop.snug_torque_nm < prop.torque_window_nm[0]
+    # The engine's own loader accepts it (target above snug, over-torque stop above all).
+    assert parse_program(program_toml(plan, prop)).strategy.value == strategy
 
 
 def test_alpha_a_outside_torque_control_is_flagged_not_used() -> None:

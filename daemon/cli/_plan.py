@@ -36,6 +36,27 @@ from clampd.protocol import Kind, UnitError, parse_quantity
 __all__ = ["add_arguments", "plan_as_dict", "run"]
 
 
+# A bare number is refused rather than taken as N·m: shops set wrenches in ft·lbf and in·lbf
+# too, and a capacity read in the wrong unit passes a wrench that is 1.36 times too small.
+_WRENCH_FORMAT = 'e.g. "100 N*m" or "75 ft*lbf"'
+
+
+def _wrench_max_nm(text: str) -> float:
+    """The wrench capacity in N·m; ``UnitError`` naming the option and the expected format."""
+    try:
+        float(text)
+    except ValueError:
+        pass
+    else:
+        raise UnitError(f"--wrench-max {text!r} has no unit: give it as {_WRENCH_FORMAT}")
+    try:
+        return parse_quantity(text, Kind.TORQUE)
+    except UnitError:
+        raise UnitError(
+            f"--wrench-max {text!r} is not a torque: give it as {_WRENCH_FORMAT}"
+        ) from None
+
+
 def _finite(text: str) -> float:
     try:
         value = float(text)
@@ -70,10 +91,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         choices=[m.value for m in TighteningMethod],
         default="torque-angle",
         help="tightening method (default torque-angle); decides αA and the proposed program "
-        "(--program-out: torque-angle or yield)",
+        "(--program-out: torque-angle or yield with their windows, torque with an angle "
+        "monitoring window)",
     )
     a("--alpha-a", type=_finite, help="tightening factor for torque control (default 1.7)")
-    a("--wrench-max", help='wrench capacity, e.g. "100 N*m" or "75 ft*lbf"')
+    a("--wrench-max", help=f"wrench capacity with its unit, {_WRENCH_FORMAT}")
     a("--program-out", type=Path, metavar="FILE.toml", help="write the proposed program here")
     a("--json", action="store_true", help="print JSON instead of a table")
 
@@ -186,6 +208,7 @@ def plan_as_dict(plan: JointPlan, proposal: ProgramProposal | None) -> dict[str,
             "torque_window_nm": list(proposal.torque_window_nm),
             "angle_window_deg": list(proposal.angle_window_deg),
             "max_torque_nm": proposal.max_torque_nm,
+            "notes": list(proposal.notes),
         }
     return out
 
@@ -247,11 +270,12 @@ def _table(plan: JointPlan, proposal: ProgramProposal | None) -> str:
         )
     if proposal is not None:
         tw, aw = proposal.torque_window_nm, proposal.angle_window_deg
-        target = (
-            f"target angle {proposal.target_angle_deg:g}°"
-            if proposal.target_angle_deg is not None
-            else f"yield fraction {proposal.yield_fraction:g}"
-        )
+        if proposal.target_angle_deg is not None:
+            target = f"target angle {proposal.target_angle_deg:g}°"
+        elif proposal.target_torque_nm is not None:
+            target = f"target torque {proposal.target_torque_nm:.2f} N·m"
+        else:
+            target = f"yield fraction {proposal.yield_fraction:g}"
         rows.append(("program", f"{proposal.strategy}: snug, {target}"))
         rows.append(("  torque window", f"{tw[0]:.1f}–{tw[1]:.1f} N·m"))
         rows.append(("  angle window", f"{aw[0]:.1f}–{aw[1]:.1f}°"))
@@ -259,6 +283,8 @@ def _table(plan: JointPlan, proposal: ProgramProposal | None) -> str:
     width = max(len(r[0]) for r in rows)
     lines = [f"{label:<{width}}  {value}" for label, value in rows]
     lines += [f"WARNING: {w}" for w in plan.warnings]
+    if proposal is not None:
+        lines += [f"NOTE: {n}" for n in proposal.notes]
     lines += [f"CAUTION: {c}" for c in plan.cautions]
     return "\n".join(lines)
 
@@ -268,7 +294,7 @@ def run(args: argparse.Namespace) -> int:
     try:
         wrench = None
         if args.wrench_max is not None:
-            wrench = parse_quantity(args.wrench_max, Kind.TORQUE)
+            wrench = _wrench_max_nm(args.wrench_max)
         inp = JointInput(
             thread=args.thread,
             property_class=args.property_class,
@@ -291,20 +317,17 @@ def run(args: argparse.Namespace) -> int:
             wrench_max_nm=wrench,
         )
         plan = plan_joint(inp)
-        proposal = None
-        if inp.method is not TighteningMethod.TORQUE:
-            strategy = "yield" if inp.method is TighteningMethod.YIELD else "torque-angle"
-            proposal = propose_program(plan, strategy)
-    except (PlannerError, UnitError) as exc:
+        # The method's values name the engine's strategies (torque, torque-angle, yield).
+        proposal = propose_program(plan, inp.method.value)
+    except PlannerError as exc:
+        # The only strategy the planner refuses for a valid method: an angle step under 1°.
+        hint = " (--method torque)" if exc.field == "strategy" else ""
+        print(f"clampd plan: error: {exc}{hint}", file=sys.stderr)
+        return 2
+    except UnitError as exc:
         print(f"clampd plan: error: {exc}", file=sys.stderr)
         return 2
     if args.program_out is not None:
-        if proposal is None:
-            print(
-                "clampd plan: error: --program-out needs --method torque-angle or yield",
-                file=sys.stderr,
-            )
-            return 2
         try:
             args.program_out.write_text(program_toml(plan, proposal), encoding="utf-8")
         except OSError as exc:

@@ -21,6 +21,20 @@ Windows (common practice, no source, unless said):
   cannot lead: cue latency plus a slow reaction (~0.35 s) at a finishing pull of ~40 °/s is
   ~14°, taken as 15° (our estimate from the reaction times in DESIGN.md's domain notes).
   The torque window spans the torques at yield of both corners, widened by 10 %.
+- torque: the target torque is MA, the VDI 2230 tightening torque that gives FM,zul at the
+  lowest friction (``JointPlan.torque_nm``; the torque the tables print). The torque window is
+  ±10 % of it, as wide as the torque-angle program widens its final torques and wider than the
+  ±4 to ±6 % ISO 6789-1 allows a hand torque tool (from memory), so a sound tool lands inside;
+  its upper limit is capped at the least torque that takes a minimum-strength bolt to yield
+  (ν = 1 at the lowest friction), but never below the target. The angle monitoring window is
+  the elastic angle from snug to each end of the torque window at both friction corners
+  (preload F = M/(dMA/dF) in the VDI 2230 torque relation, angle 360·(δS+δP)·ΔF/P), widened
+  like the torque-angle window: ±10 %, at least ±2°, the widening above capped at the largest
+  angle to yield (past it a minimum-strength bolt has yielded at any friction in the range)
+  but never cutting into the span itself. It flags a joint much softer or stiffer
+  than planned (wrong part, missing washer, cross-threading, a stripping thread); narrow it
+  from a run of known-good joints on the line. The window lets the torque run above MA, so at
+  the lowest friction the preload may pass FM,zul: the file says by how much.
 - max_torque (an over-torque stop) sits 10 % above the torque window.
 - error proofing (the engine's ``_proofing.py``): the joint-rate window spans
   dT/dθ = (dMA/dF)·P/(360·(δS+δP)) at both friction corners (dMA/dF from the VDI 2230 torque
@@ -46,7 +60,7 @@ from typing import Any
 from clampd.daemon.planner._errors import PlannerError
 from clampd.daemon.planner._joint import JointPlan
 from clampd.daemon.planner._resilience import rotation_deg
-from clampd.daemon.planner._vdi2230 import torque_per_preload_mm
+from clampd.daemon.planner._vdi2230 import preload_from_torque_n, torque_per_preload_mm
 
 __all__ = ["PROGRAM_KEYS", "ProgramProposal", "program_toml", "propose_program"]
 
@@ -97,6 +111,7 @@ class ProgramProposal:
     joint_rate_window_nm_per_deg: tuple[float, float] | None = None
     rehit_angle_max_deg: float | None = None
     torque_drop_fraction: float | None = None
+    notes: tuple[str, ...] = ()
 
 
 def _program_id(plan: JointPlan, strategy: str) -> str:
@@ -139,7 +154,7 @@ def propose_program(
     *,
     rundown_mm: tuple[float, float] | None = None,
 ) -> ProgramProposal:
-    """Derive a torque-angle or yield program from ``plan``; ``PlannerError`` otherwise.
+    """Derive a torque, torque-angle or yield program from ``plan``; ``PlannerError`` otherwise.
 
     ``rundown_mm``: the thread length the wrench runs down before the head seats (shortest,
     longest), when the assembly fixes it; it gives the rundown-angle window.
@@ -190,7 +205,59 @@ def propose_program(
             max_torque_nm=tw[1] * (1 + _MAX_TORQUE_OVER),
             **proofing,
         )
-    raise PlannerError("strategy", f"can propose torque-angle or yield, not {strategy!r}")
+    if strategy == "torque":
+        return _torque_program(plan, name, proofing)
+    raise PlannerError("strategy", f"can propose torque, torque-angle or yield, not {strategy!r}")
+
+
+def _torque_program(plan: JointPlan, name: str, proofing: dict[str, Any]) -> ProgramProposal:
+    """Torque control with angle monitoring (see the module docstring)."""
+    target = plan.torque_nm
+    tw = (
+        target * (1 - _TORQUE_WIDEN),
+        max(min(target * (1 + _TORQUE_WIDEN), plan.yield_torque_nm[0]), target),
+    )
+    (mu_g_lo, mu_g_hi), (mu_k_lo, mu_k_hi) = plan.mu_thread_range, plan.mu_head_range
+    delta_s, delta_p, p = plan.bolt.total, plan.clamped.total, plan.thread.pitch_mm
+
+    def angle(torque_nm: float, mu_g: float, mu_k: float) -> float:
+        rise = torque_nm - plan.snug_torque_nm
+        f = preload_from_torque_n(rise, plan.thread, mu_g, mu_k, plan.dkm_mm)
+        return rotation_deg(f, delta_s, delta_p, p)
+
+    # The least angle: lowest window torque at the highest friction; the most: the reverse.
+    a_lo, a_hi = angle(tw[0], mu_g_hi, mu_k_hi), angle(tw[1], mu_g_lo, mu_k_lo)
+    tol_lo = max(_ANGLE_TOL * a_lo, _ANGLE_TOL_MIN_DEG)
+    tol_hi = max(_ANGLE_TOL * a_hi, _ANGLE_TOL_MIN_DEG)
+    # Past this angle a minimum-strength bolt has yielded whatever the friction.
+    yield_cap = plan.angle_to_yield_range_deg[1]
+    f_top = preload_from_torque_n(tw[1], plan.thread, mu_g_lo, mu_k_lo, plan.dkm_mm)
+    nu_top = plan.inputs.utilisation * f_top / plan.preload_n
+    notes = (
+        (
+            f"target torque {target:.2f} N·m is MA, which gives FM,zul {plan.preload_n:.0f} N"
+            f" at μG {mu_g_lo:g}; at the top of the torque window ({tw[1]:.2f} N·m) the same"
+            f" friction gives {f_top:.0f} N, a utilisation ν of about {nu_top:.2f}."
+        ),
+        (
+            "Where the specification requires the preload to stay at or below FM,zul including"
+            " the tool's scatter, lower the target torque by that scatter."
+        ),
+    )
+    return ProgramProposal(
+        id=_program_id(plan, "torque"),
+        name=name,
+        strategy="torque",
+        snug_torque_nm=plan.snug_torque_nm,
+        target_torque_nm=target,
+        target_angle_deg=None,
+        yield_fraction=None,
+        torque_window_nm=tw,
+        angle_window_deg=(max(a_lo - tol_lo, 0.0), max(min(a_hi + tol_hi, yield_cap), a_hi)),
+        max_torque_nm=tw[1] * (1 + _MAX_TORQUE_OVER),
+        notes=notes,
+        **proofing,
+    )
 
 
 def _q(value: float, unit: str) -> str:
@@ -207,6 +274,7 @@ def program_toml(plan: JointPlan, proposal: ProgramProposal) -> str:
     lines = ["# Tightening program proposed by clampd plan (planner version 1)."]
     lines += [f"# CAUTION: {c}" for c in plan.cautions]
     lines += [f"# WARNING: {w}" for w in plan.warnings]
+    lines += [f"# NOTE: {n}" for n in proposal.notes]
     lines += [
         "# Derivation (VDI 2230 Part 1, ISO 898-1):",
         (
@@ -220,6 +288,10 @@ def program_toml(plan: JointPlan, proposal: ProgramProposal) -> str:
         ),
         f"#   FM,zul {plan.preload_n:.0f} N at μG min; MA {plan.torque_nm:.2f} N·m",
         f"#   δS {plan.bolt.total:.4g} mm/N, δP {plan.clamped.total:.4g} mm/N",
+        (
+            f"#   preload from MA at μ min/max {plan.preload_at_torque_n[0]:.0f}"
+            f"–{plan.preload_at_torque_n[1]:.0f} N (torque control)"
+        ),
         (
             f"#   snug {plan.snug_torque_nm:.2f} N·m; angle from snug to"
             f" {plan.angle_target_preload_n:.0f} N (FM,zul at μG max)"
