@@ -15,7 +15,8 @@ group, each named after what it serves:
 ``clampd.station-status``  retained station status after a joint position is done
 ``clampd.watchdog``        ``WATCHDOG=1`` to systemd while the loop is alive
 ``clampd.outbox``          retention pruning of the journal
-``clampd.quality``         retained quality statistics and trend alarms (``_quality.py``)
+``clampd.quality``         retained quality statistics and alarms (``_quality.py``)
+``clampd.alarms``          time, outbox and calibration observed for the alarms
 ``clampd[WRENCH].state``   tells the station state when that wrench's rundown starts
 ``clampd.view``            the station view, a local read-only web page (``[view]``)
 =========================  ===========================================================
@@ -57,6 +58,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, Final, Protocol, TypeVar
 
+from clampd.daemon.runtime._alarms import AlarmEvaluator
 from clampd.daemon.runtime._backoff import next_delay
 from clampd.daemon.runtime._ble import BleakWrenchLink, LinkRefusedError
 from clampd.daemon.runtime._commands import CommandHandler
@@ -338,6 +340,7 @@ class Station:
                     tg.create_task(self._watchdog(), name="clampd.watchdog")
                     tg.create_task(self._prune(outbox), name="clampd.outbox")
                     tg.create_task(self.quality.run(session), name="clampd.quality")
+                    tg.create_task(self.quality.watch(outbox, cfg.wrench), name="clampd.alarms")
                     self.ready.set()
                     self.notifier.ready(
                         f"station {cfg.station.id}: {len(self.slots)} wrench(es) configured"
@@ -369,7 +372,10 @@ class Station:
         self, outbox: AsyncOutbox, session: MqttSession, board: _StatusBoard, player: CuePlayer
     ) -> None:
         cfg = self.config
-        self.quality = QualityFeed(OutboxResultSink(outbox, self.topics))
+        self.quality = QualityFeed(
+            OutboxResultSink(outbox, self.topics),
+            alarms=AlarmEvaluator(cfg.station.id, cfg.alarms),
+        )
         sink: ResultSink = self.quality
         ports: StatusSink = board
         live: _LivePort = board
@@ -379,6 +385,7 @@ class Station:
             sink = self.view.results(sink)
             tee = self.view.board(board)
             ports, live = tee, tee
+        ports = self.quality.status_port(ports)  # link and battery alarms read every status
         allowed = [w.address for w in cfg.wrench]
         self._build_state()
         if self.view is not None:
