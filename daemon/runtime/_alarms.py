@@ -266,6 +266,9 @@ class AlarmEvaluator:
         self._links: dict[str, _Link] = {}
         self._battery: dict[str, str] = {}  # wrench → id of its raised battery_low
         self._calibration: dict[str, tuple[AlarmCode, dt.date, str]] = {}
+        self._calibration_raises: collections.Counter[tuple[AlarmCode, str, dt.date]] = (
+            collections.Counter()
+        )
         self._streaks: dict[tuple[str, str], _Streak] = {}
         self._backlog: str | None = None
         self._active: dict[str, Alarm] = {}  # id → its raised payload
@@ -426,7 +429,11 @@ class AlarmEvaluator:
                     f"({(due - obs.today).days} day(s) left); arrange a calibration slot or a "
                     "replacement tool."
                 )
-            alarm_id = _alarm_id(since, code.value, obs.wrench_id, due.isoformat())
+            # The first raise of this code for this due date in a run has the id a restart
+            # gives it again; a raise after that (the date moved away and back) a new one.
+            again = self._calibration_raises[(code, obs.wrench_id, due)]
+            self._calibration_raises[(code, obs.wrench_id, due)] += 1
+            alarm_id = _alarm_id(since, code.value, obs.wrench_id, due.isoformat(), str(again))
             self._calibration[obs.wrench_id] = (code, due, alarm_id)
             out.append(self._raise(code, alarm_id, obs.at, text, wrench_id=obs.wrench_id))
         return out
