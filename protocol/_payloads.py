@@ -118,6 +118,8 @@ class Reason(enum.StrEnum):
     ENGINE_ERROR = "engine_error"
     CALIBRATION_OVERDUE = "calibration_overdue"
     WRONG_WRENCH = "wrong_wrench"  # program's torque outside the wrench's usable range
+    TORQUE_OVERRANGE = "torque_overrange"  # the sensor flagged torque beyond its range
+    GYRO_OVERRANGE = "gyro_overrange"  # the gyro saturated: the angle is under-counted
 
 
 class Strategy(enum.StrEnum):

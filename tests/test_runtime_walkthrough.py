@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import logging
 import tomllib
 from collections.abc import AsyncIterator
 from pathlib import Path
@@ -31,16 +32,20 @@ import numpy as np
 import pytest
 
 from clampd.daemon.runtime import NullCuePlayer, parse_config
+from clampd.daemon.runtime._demo import Technician
 from clampd.daemon.runtime._supervisor import Station
 from clampd.simulators import (
     Bench,
+    FrameFlags,
+    JointModel,
+    JointPopulation,
     OperatorParams,
     SensorParams,
     VirtualWrenchSensor,
 )
 from clampd.simulators._broker import LocalBroker
 from clampd.simulators._mes import MesStandIn
-from clampd.simulators._station_rig import wait_for_status
+from clampd.simulators._station_rig import eventually, wait_for_status
 from clampd.simulators.ble import VirtualAir, WrenchIdentity
 
 # Demo scenario: Harrow Vale Cycles (invented), frame shop, station fs-40: a wheel-hub
@@ -387,3 +392,80 @@ async def test_a_wrench_on_a_declarative_profile_is_served_under_the_daemon(
         assert payload["joint_rate_nm_per_deg"] == pytest.approx(1.5, rel=0.02)
         # Inside both windows with no fault: OK (MQTT.md, OK exactly when reasons is empty).
         assert payload["status"] == "OK", payload["reasons"]
+
+
+# -- 3. frame flags: overrange makes the rundown NOK, a low battery is said once ----------------
+
+# Short free run-down before the head seats, so a rundown takes about a second of real time
+# (the virtual wrench streams in real time); the simulator's default M10 8.8 joints yield
+# near 60-70 N*m, well above the program's 22 N*m target.
+QUICK_JOINTS = JointPopulation(contact_angle_deg=(15.0, 25.0))
+WRENCH_LOG = "clampd.daemon.runtime._wrench"
+
+
+async def test_overrange_flags_make_the_rundown_nok_and_a_low_battery_is_logged_once(
+    broker: LocalBroker, topic_prefix: str, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    caplog.set_level(logging.WARNING, logger=WRENCH_LOG)
+    rng = np.random.default_rng(44)
+    tech = Technician(np.random.default_rng(45), deflection_deg_per_nm=0.02)
+    # The battery starts below the sensor's low mark, so every frame carries LOW_BATTERY; the
+    # tool states 60 N*m while the station file says 100 N*m.
+    sensor = VirtualWrenchSensor(
+        SensorParams(serial="SIM-040-A", torque_max_nm=60.0, battery_start_percent=10.0),
+        np.random.default_rng(46),
+        tech,
+    )
+    operator = OperatorParams(steady_rate_dps=30.0)
+    async with VirtualAir() as air:
+        wrench = await air.add_wrench(
+            sensor, name="W-040A", identity=WrenchIdentity(serial="SIM-040-A")
+        )
+        text = station_toml(
+            topic_prefix,
+            broker.url,
+            tmp_path / "outbox.sqlite3",
+            wrench_table(PRESENT, wrench.address),
+        )
+        async with running_station(broker, topic_prefix, text, air.bleak_kwargs()) as (
+            station,
+            mes,
+        ):
+            worker = station.slots[PRESENT].worker
+            await wait_for_status(mes, status_topic(PRESENT), lambda s: s.get("connected") is True)
+            positions = ["spoke-flange-1", "spoke-flange-2", "spoke-flange-3"]
+            reply = await mes.select_program("hub-m8", "HUB-0008", positions)
+            assert reply["status"] == "ok", reply
+            # One rundown per case, one position each.
+            for n, flags in enumerate(
+                (FrameFlags.OVERLOAD, FrameFlags.GYRO_SATURATED, FrameFlags.NONE), start=1
+            ):
+                tech.hand_over(JointModel.sample(rng, QUICK_JOINTS), operator)
+                await eventually(lambda: worker.in_rundown, 30)
+                if flags:
+                    # Three frames in a row: logged once for the rundown all the same.
+                    sensor.force_flags(flags, frames=3)
+                await mes.wait_results(n, timeout_s=30)
+                await eventually(lambda: not worker.in_rundown, 30)
+            payloads = [r.payload for r in mes.unique_results()]
+    assert all(p is not None for p in payloads)
+    reasons = [set(p["reasons"]) if p else set() for p in payloads]
+    # PROFILE.md: OVERLOAD is torque beyond the calibrated range, GYRO_SATURATED a gyro past
+    # its range; the reasons are MQTT.md's torque_overrange and gyro_overrange.
+    assert "torque_overrange" in reasons[0]
+    assert "gyro_overrange" not in reasons[0]
+    assert "gyro_overrange" in reasons[1]
+    assert "torque_overrange" not in reasons[1]
+    assert not reasons[2] & {"torque_overrange", "gyro_overrange"}
+    assert [p["status"] for p in payloads[:2] if p] == ["NOK", "NOK"]
+
+    lines = [r.getMessage() for r in caplog.records if r.name == WRENCH_LOG]
+    flagged = [m for m in lines if "sensor flagged" in m]
+    assert len(flagged) == 2, flagged
+    assert "torque_overrange" in flagged[0]
+    assert "gyro_overrange" in flagged[1]
+    assert sum("low battery" in m for m in lines) == 1, lines  # one connection, one line
+    rating = [m for m in lines if "rated torque" in m]
+    assert len(rating) == 1, lines
+    assert "60.0 N*m" in rating[0]
+    assert "100.0 N*m" in rating[0]

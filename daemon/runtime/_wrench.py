@@ -42,6 +42,13 @@ Station policy (documented choices)
   of a rundown are those in force when it started.
 - Aborts (``request_abort``) end the rundown in progress NOK ``aborted`` at the next frame or
   idle tick (within ``IDLE_S``).
+- Sensor flags (PROFILE.md): a frame flagged ``OVERLOAD`` or ``GYRO_SATURATED`` during a
+  rundown makes it NOK ``torque_overrange`` or ``gyro_overrange`` (an overloaded bridge
+  misreads torque, a saturated gyro under-counts angle: neither reading can be trusted for a
+  verdict), logged once per rundown; the samples still go to the engine, so the curve shows
+  what the sensor said. ``LOW_BATTERY`` is logged once per connection (the wrench status
+  carries the Battery Service's level). A tool whose info record states another rated torque
+  than the station file is logged once per connection: the file's value is the one used.
 
 These results support, never replace, the joint designer's specification, local codes and
 licensed practice.
@@ -91,6 +98,7 @@ from clampd.protocol import (
     CueKind,
     CuePattern,
     FrameError,
+    FrameFlags,
     Judgement,
     LiveCue,
     LiveProgress,
@@ -149,6 +157,15 @@ STORE_RETRY_S: Final = 1.0
 _CUE_QUEUE_BOUND: Final = 8
 # Log at most one line per this many corrupt frames after the first few (our choice).
 _CORRUPT_LOG_EVERY: Final = 100
+# Sensor flags that make the rundown they fall in NOK, with the reason each gives.
+_FLAG_REASONS: Final = (
+    (FrameFlags.OVERLOAD, Reason.TORQUE_OVERRANGE),
+    (FrameFlags.GYRO_SATURATED, Reason.GYRO_OVERRANGE),
+)
+# A tool's stated rated torque and the station file's agree within this fraction: the info
+# record holds an f32 and a file may give "110 ft*lbf" or a rounded N*m figure, which differ
+# by rounding only; another tool model differs by tens of percent (our choice).
+_TORQUE_MAX_TOLERANCE: Final = 0.005
 
 _CUE_SOUND: Final = {
     engine.CueKind.APPROACH: (CueSound.APPROACH, CuePattern.APPROACH, CueKind.APPROACH),
@@ -365,6 +382,9 @@ class WrenchWorker:
         self._cue_queue: asyncio.Queue[bytes] | None = None
         self._last_status: tuple[object, ...] | None = None
         self._battery: int | None = None
+        self._low_battery_logged = False
+        # Reasons the frame being handled gives the rundown it falls in (sensor flags).
+        self._frame_faults: tuple[Reason, ...] = ()
 
     def __repr__(self) -> str:
         return f"WrenchWorker({self.wrench_id!r}, {self.link.address!r})"
@@ -412,6 +432,8 @@ class WrenchWorker:
         queue: asyncio.Queue[bytes] = asyncio.Queue(_CUE_QUEUE_BOUND)
         self._cue_queue = queue
         self._battery = link.battery_pct
+        self._low_battery_logged = False
+        self._check_rating(link.info)
         self._publish_status()
         try:
             async with asyncio.TaskGroup() as tg:
@@ -476,6 +498,14 @@ class WrenchWorker:
         if not check.accepted:
             self.stats.frames_refused += 1
             return
+        self._frame_faults = tuple(r for flag, r in _FLAG_REASONS if flag in frame.flags)
+        if FrameFlags.LOW_BATTERY in frame.flags and not self._low_battery_logged:
+            self._low_battery_logged = True
+            _log.warning(
+                "%s %s: the wrench reports a low battery; charge or swap it before the next job",
+                self.wrench_id,
+                self.link.address,
+            )
         times = check.times_s()
         period_s = frame.period_us / 1e6
         if self._offset is None:
@@ -505,6 +535,8 @@ class WrenchWorker:
             _log.warning("%s %s: samples rejected: %s", self.wrench_id, self.link.address, exc)
             return
         await self._act(events, n.host_t_s, torque, eng, base=base)
+        self._mark_faults()  # a rundown that started in, or goes on after, this frame
+        self._frame_faults = ()
         self._progress(n.host_t_s, last_t)
 
     def _continue_from(self, first_t: float, host_t: float, period_s: float) -> float:
@@ -626,6 +658,7 @@ class WrenchWorker:
                         "%s %s: engine fault: %s", self.wrench_id, self.link.address, event.message
                     )
                 case engine.RundownFinished():
+                    self._mark_faults()  # the frame that ended it counts too
                     await self._finish(event.result)
         del eng
 
@@ -663,6 +696,38 @@ class WrenchWorker:
             )
             self._player.play(CueSound.LOCKED)
             self._tool_cue(CuePattern.LOCKED)
+
+    def _mark_faults(self) -> None:
+        """Give the rundown in progress the reasons of the current frame's sensor flags,
+        each once, with one log line per new reason."""
+        current = self._current
+        if current is None or not self._frame_faults:
+            return
+        new = tuple(r for r in self._frame_faults if r not in current.extra)
+        if not new:
+            return
+        current.extra += new
+        _log.warning(
+            "%s %s: sensor flagged %s during rundown %s; it is recorded NOK",
+            self.wrench_id,
+            self.link.address,
+            ", ".join(r.value for r in new),
+            current.result_id,
+        )
+
+    def _check_rating(self, info: WrenchInfo | None) -> None:
+        if info is None:
+            return
+        configured = self.config.torque_max_nm
+        if abs(info.torque_max_nm - configured) > _TORQUE_MAX_TOLERANCE * configured:
+            _log.warning(
+                "%s %s: the tool states a rated torque of %.1f N*m, the station file %.1f N*m "
+                "(torque_max); check that this is the wrench the file means",
+                self.wrench_id,
+                self.link.address,
+                info.torque_max_nm,
+                configured,
+            )
 
     async def _finish(self, result: engine.RundownResult) -> None:
         current, self._current = self._current, None
