@@ -23,6 +23,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import random
 import tomllib
 from collections.abc import AsyncIterator
 from pathlib import Path
@@ -31,7 +32,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from clampd.daemon.runtime import NullCuePlayer, parse_config
+from clampd.daemon.runtime import BleakWrenchLink, NullCuePlayer, parse_config
 from clampd.daemon.runtime._demo import Technician
 from clampd.daemon.runtime._supervisor import Station
 from clampd.simulators import (
@@ -469,3 +470,43 @@ async def test_overrange_flags_make_the_rundown_nok_and_a_low_battery_is_logged_
     assert len(rating) == 1, lines
     assert "60.0 N*m" in rating[0]
     assert "100.0 N*m" in rating[0]
+
+
+# -- 4. no Bluetooth stack: said once, clearly, and retried quietly -------------------------
+
+
+async def test_without_a_system_dbus_the_link_says_so_once_and_keeps_retrying(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """bleak's own BlueZ backend (no virtual link) on a host whose system bus is absent."""
+    # The D-Bus specification's system bus address variable (from memory): a socket that is
+    # not there is what a host without dbus and BlueZ gives.
+    monkeypatch.setenv("DBUS_SYSTEM_BUS_ADDRESS", f"unix:path={tmp_path / 'no-bus-here'}")
+    caplog.set_level(logging.DEBUG, logger="clampd.daemon.runtime._ble")
+    link = BleakWrenchLink(
+        "C0:DE:00:00:40:0A", wrench_id=PRESENT, allowed=["C0:DE:00:00:40:0A"], connect_timeout_s=1
+    )
+
+    async def serve(_link: BleakWrenchLink) -> None:
+        raise AssertionError("connected without a Bluetooth stack")
+
+    task = asyncio.create_task(link.connect_forever(serve, rng=random.Random(3)))
+    try:
+        await eventually(lambda: link.connect_failures >= 4, 30)
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+    ours = [r for r in caplog.records if r.name.startswith("clampd.")]
+    loud = [r for r in ours if r.levelno >= logging.INFO]
+    assert len(loud) == 1, [r.getMessage() for r in loud]
+    (said,) = loud
+    assert said.levelno == logging.ERROR
+    text = said.getMessage()
+    assert text.startswith(f"{PRESENT} C0:DE:00:00:40:0A: ")
+    for needed in ("D-Bus", "BlueZ", "bluez", "systemctl", "--ble-hci", "retrying"):
+        assert needed in text, text
+    # The retries go on, quietly (one line per attempt at debug level only).
+    quiet = [r for r in ours if "reconnecting in" in r.getMessage()]
+    assert len(quiet) >= 4
+    assert all(r.levelno == logging.DEBUG for r in quiet)

@@ -26,6 +26,11 @@ Invariants
   are dropped and counted (``frames_overflowed``). The reader's sequence check then sees the
   loss as lost frames, so a rundown spanning it is judged NOK (data gap), never silently OK.
   ``LinkLost`` is enqueued past the bound: a loss is never dropped.
+- A host without a usable Bluetooth stack (no system D-Bus, no BlueZ, no or a powered-off
+  adapter) is ``LinkUnavailableError``, which says what to do. ``connect_forever`` logs it
+  once as an error and then retries quietly, with a reminder every ``UNAVAILABLE_REMIND_S``:
+  the stack may come up later (bluetoothd started after the daemon), and a log filling
+  with the same line hides everything else.
 """
 
 from __future__ import annotations
@@ -44,7 +49,10 @@ from bleak import BleakClient, BleakScanner
 from bleak.backends.characteristic import BleakGATTCharacteristic
 from bleak.backends.device import BLEDevice
 from bleak.exc import (
+    BleakBluetoothNotAvailableError,
+    BleakBluetoothNotAvailableReason,
     BleakCharacteristicNotFoundError,
+    BleakDBusError,
     BleakDeviceNotFoundError,
     BleakError,
     BleakGATTProtocolError,
@@ -76,6 +84,7 @@ __all__ = [
     "LinkNotFoundError",
     "LinkProfileError",
     "LinkRefusedError",
+    "LinkUnavailableError",
     "Notification",
     "normalise_address",
 ]
@@ -97,6 +106,27 @@ SCAN_TIMEOUT_S: Final = 5.0
 # A GATT write or read that takes longer than this is treated as a lost link. ATT itself
 # gives up after 30 s (Core spec Vol 3 Part F 3.3.3); a cue is useless long before (our choice).
 GATT_TIMEOUT_S: Final = 5.0
+# While the host has no usable Bluetooth stack, the reconnect loop keeps trying quietly and
+# says so again this often: once per ten minutes keeps the cause visible in a log tail
+# without drowning the other lines (our choice).
+UNAVAILABLE_REMIND_S: Final = 600.0
+# The D-Bus error name of a bus name nobody owns: BlueZ's org.bluez is not running (D-Bus
+# specification, "Message Bus Specification: org.freedesktop.DBus.Error.*", from memory).
+_DBUS_SERVICE_UNKNOWN: Final = "org.freedesktop.DBus.Error.ServiceUnknown"
+_NO_STACK_REMEDY: Final = (
+    "install BlueZ (package bluez) and make sure dbus and bluetooth run "
+    "(systemctl status dbus bluetooth); on a machine without Bluetooth, "
+    "'clampd run --ble-hci SPEC' uses a virtual link"
+)
+_ADAPTER_PROBLEMS: Final = {
+    BleakBluetoothNotAvailableReason.NO_BLUETOOTH: "no Bluetooth adapter found; attach one",
+    BleakBluetoothNotAvailableReason.NO_BLE_CENTRAL_ROLE: (
+        "no adapter that supports Bluetooth Low Energy; attach a BLE adapter"
+    ),
+    BleakBluetoothNotAvailableReason.POWERED_OFF: (
+        "the Bluetooth adapter is powered off; 'bluetoothctl power on' (and check rfkill)"
+    ),
+}
 
 
 # -- what the link yields ------------------------------------------------------------------
@@ -152,6 +182,16 @@ class LinkRefusedError(LinkError):
 
     The configuration's (or the caller's) fault; never retried.
     """
+
+
+class LinkUnavailableError(LinkError):
+    """The host has no usable Bluetooth stack: no system D-Bus, BlueZ not running, no adapter,
+    or the adapter off. The host's fault, not the wrench's; ``remedy`` says what to do.
+    Retried, since the stack may come up later."""
+
+    def __init__(self, message: str, *, address: str, wrench_id: str, remedy: str) -> None:
+        super().__init__(f"{message}; {remedy}", address=address, wrench_id=wrench_id)
+        self.remedy = remedy
 
 
 class LinkNotFoundError(LinkError):
@@ -235,6 +275,7 @@ class BleakWrenchLink:
         self.mtu: int | None = None
         # counters for status, logs and tests
         self.connections = 0
+        self.connect_failures = 0
         self.frames_received = 0
         self.frames_overflowed = 0
 
@@ -346,18 +387,39 @@ class BleakWrenchLink:
         """
         rng = rng if rng is not None else random.Random()
         attempt = 0
+        said_unavailable: float | None = None  # monotonic time it was last said
         while True:
+            quiet = False
             try:
                 async with self:
                     attempt = 0
+                    said_unavailable = None
                     await serve(self)
             except LinkRefusedError:
                 raise
+            except LinkUnavailableError as exc:
+                self.connect_failures += 1
+                now = time.monotonic()
+                if said_unavailable is None:
+                    said_unavailable = now
+                    _log.error("%s (retrying quietly)", exc)
+                elif now - said_unavailable >= UNAVAILABLE_REMIND_S:
+                    said_unavailable = now
+                    _log.warning(
+                        "%s %s: still no usable Bluetooth stack after %d attempts; %s",
+                        self.wrench_id,
+                        self.address,
+                        self.connect_failures,
+                        exc.remedy,
+                    )
+                quiet = True
             except LinkError as exc:
+                self.connect_failures += 1
                 _log.warning("%s", exc)
             delay = next_delay(attempt, rng)
             attempt += 1
-            _log.info(
+            _log.log(
+                logging.DEBUG if quiet else logging.INFO,
                 "%s %s: reconnecting in %.2f s (attempt %d)",
                 self.wrench_id,
                 self.address,
@@ -455,6 +517,22 @@ class BleakWrenchLink:
             yield
         except LinkError:
             raise
+        except BleakBluetoothNotAvailableError as exc:
+            problem = _ADAPTER_PROBLEMS.get(exc.reason)
+            if problem is None:  # denied by the system or the user, or unknown
+                problem = f"Bluetooth is not available ({exc.reason.name.lower()})"
+                remedy = "check that the daemon's user may use BlueZ over D-Bus (deploy/BOARD.md)"
+            else:
+                problem, _, remedy = problem.partition("; ")
+            raise LinkUnavailableError(f"{what}: {problem}", remedy=remedy, **where) from None
+        except BleakDBusError as exc:
+            if exc.dbus_error != _DBUS_SERVICE_UNKNOWN:
+                raise LinkError(f"{what}: D-Bus error {exc.dbus_error}", **where) from None
+            raise LinkUnavailableError(
+                f"{what}: BlueZ (bluetoothd) is not running on the system D-Bus",
+                remedy=_NO_STACK_REMEDY,
+                **where,
+            ) from None
         except BleakDeviceNotFoundError:
             raise LinkNotFoundError(f"{what}: no answer", **where) from None
         except BleakCharacteristicNotFoundError as exc:
@@ -478,4 +556,20 @@ class BleakWrenchLink:
                 raise LinkLostError(f"{what}: link dropped", **where) from None
             raise LinkError(f"{what}: {type(exc).__name__}", **where) from None
         except OSError as exc:
+            # Before any radio traffic the only socket bleak opens is the system D-Bus's
+            # (BlueZ is reached through it): missing, refused or forbidden, there is no
+            # Bluetooth stack for this daemon.
+            if what in ("scan", "connect") and isinstance(
+                exc, FileNotFoundError | ConnectionRefusedError | PermissionError
+            ):
+                raise LinkUnavailableError(
+                    f"{what}: the system D-Bus is not reachable ({type(exc).__name__}), so "
+                    "BlueZ, the Linux Bluetooth stack, cannot be used",
+                    remedy=(
+                        "let the daemon's user talk to BlueZ on the system D-Bus (deploy/BOARD.md)"
+                        if isinstance(exc, PermissionError)
+                        else _NO_STACK_REMEDY
+                    ),
+                    **where,
+                ) from None
             raise LinkError(f"{what}: {type(exc).__name__} ({exc.strerror})", **where) from None
