@@ -24,7 +24,9 @@ import asyncio
 import contextlib
 import logging
 import random
+import sys
 import tomllib
+import types
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
@@ -57,7 +59,9 @@ AWAY = "w-040-b"
 AWAY_ADDRESS = "C0:DE:00:00:40:0B"
 
 
-def station_toml(prefix: str, broker_url: str, outbox: Path, wrenches: str) -> str:
+def station_toml(
+    prefix: str, broker_url: str, outbox: Path, wrenches: str, cues: str = "none"
+) -> str:
     return f"""
 [station]
 id = "{STATION_ID}"
@@ -78,7 +82,7 @@ torque_window = ["19 N*m", "25 N*m"]
 angle_window = ["2 deg", "120 deg"]
 
 [cues]
-output = "none"
+output = "{cues}"
 
 [outbox]
 path = "{outbox}"
@@ -181,7 +185,7 @@ async def test_lock_and_unlock_republish_the_retained_wrench_status(
 PROFILES = Path(__file__).resolve().parents[1] / "protocol" / "profiles"
 
 
-def write_station(tmp_path: Path, **wrench: str) -> Path:
+def write_station(tmp_path: Path, cues: str = "none", **wrench: str) -> Path:
     path = tmp_path / "station.toml"
     path.write_text(
         station_toml(
@@ -189,6 +193,7 @@ def write_station(tmp_path: Path, **wrench: str) -> Path:
             "mqtt://127.0.0.1:1883",
             tmp_path / "outbox.sqlite3",
             wrench_table(PRESENT, "C0:DE:00:00:40:0A", **wrench),
+            cues=cues,
         ),
         encoding="utf-8",
     )
@@ -510,3 +515,68 @@ async def test_without_a_system_dbus_the_link_says_so_once_and_keeps_retrying(
     quiet = [r for r in ours if "reconnecting in" in r.getMessage()]
     assert len(quiet) >= 4
     assert all(r.levelno == logging.DEBUG for r in quiet)
+
+
+# -- 5. the speaker: one clear line from the daemon, a warning from check-config ------------
+
+
+async def test_without_sounddevice_the_daemon_says_so_once_with_one_prefix(
+    broker: LocalBroker,
+    topic_prefix: str,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    monkeypatch.setitem(sys.modules, "sounddevice", None)  # import now raises ImportError
+    caplog.set_level(logging.WARNING, logger="clampd.daemon.runtime._supervisor")
+    text = station_toml(topic_prefix, broker.url, tmp_path / "outbox.sqlite3", "", cues="device")
+    config = parse_config(text, env={}).config
+    station = Station(config)  # the configured player, as clampd run builds it
+    stop = asyncio.Event()
+    task = asyncio.create_task(station.run(stop))
+    try:
+        async with asyncio.timeout(30):
+            await station.ready.wait()
+    finally:
+        stop.set()
+        async with asyncio.timeout(30):
+            await task
+    lines = [r.getMessage() for r in caplog.records if "sounddevice" in r.getMessage()]
+    expected = (
+        "cues: the 'sounddevice' package is not installed (pip install 'clampd[audio]'); "
+        "cues are not played"
+    )
+    assert lines == [expected]
+
+
+@pytest.mark.parametrize("loads", [False, True], ids=["missing", "present"])
+def test_check_config_warns_when_the_speaker_output_cannot_load(
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+    loads: bool,
+) -> None:
+    from clampd.daemon.cli import main
+
+    # Present: a stand-in module at the import seam (no sound stack on the test host);
+    # missing: the import raises ImportError, as without the 'audio' extra.
+    monkeypatch.setitem(
+        sys.modules, "sounddevice", types.ModuleType("sounddevice") if loads else None
+    )
+    path = write_station(tmp_path, cues="device")
+    assert main(["check-config", "--ignore-env", str(path)]) == 0
+    out = capsys.readouterr()
+    assert ": OK" in out.out
+    warned = [line for line in out.err.splitlines() if "cues.output" in line]
+    if loads:
+        assert warned == []
+    else:
+        expected = (
+            "warning: cues.output = 'device': the 'sounddevice' package is not installed "
+            "(pip install 'clampd[audio]'); cues would not be played"
+        )
+        assert warned == [expected]
+    # "none" never needs it.
+    none = write_station(tmp_path)
+    assert main(["check-config", "--ignore-env", str(none)]) == 0
+    assert "cues.output" not in capsys.readouterr().err

@@ -2,7 +2,8 @@
 
 Prints every problem with its field path (one per line) and exits 2 when the file is
 unusable, so a technician fixes it in one pass; prints warnings and exits 0 when it is
-valid. Environment overrides (``CLAMPD__...``) are applied as the daemon would apply them.
+valid (among them: cue output "device" on a machine where ``sounddevice`` does not load).
+Environment overrides (``CLAMPD__...``) are applied as the daemon would apply them.
 """
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ import os
 import sys
 
 from clampd.daemon.runtime._config import ENV_PREFIX, ConfigError, load_config
+from clampd.daemon.runtime._cues import device_output_problem
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -40,9 +42,15 @@ def run(args: argparse.Namespace) -> int:
         for hint in _hints(exc, args):
             print(f"hint: {hint}", file=sys.stderr)
         return 2
-    for warning in loaded.warnings:
-        print(f"warning: {warning}", file=sys.stderr)
     cfg = loaded.config
+    warnings = list(loaded.warnings)
+    if cfg.cues.output == "device":
+        # The daemon degrades to silence here; a technician relies on the stop cue.
+        no_sound = device_output_problem()
+        if no_sound is not None:
+            warnings.append(f"cues.output = 'device': {no_sound}; cues would not be played")
+    for warning in warnings:
+        print(f"warning: {warning}", file=sys.stderr)
     print(
         f"{args.file}: OK — station {cfg.station.id} ({cfg.station.topic_prefix}), "
         f"{len(cfg.wrench)} wrench(es), {len(cfg.program)} program(s), "

@@ -47,6 +47,7 @@ from __future__ import annotations
 import collections
 import dataclasses
 import enum
+import importlib
 import itertools
 import logging
 import os
@@ -69,6 +70,7 @@ __all__ = [
     "LatencyLog",
     "NullCuePlayer",
     "WavCuePlayer",
+    "device_output_problem",
     "make_player",
     "read_wav",
     "render",
@@ -419,9 +421,30 @@ def make_player(
     try:
         return DeviceCuePlayer(rate=rate, volume=volume, device=device), []
     except ImportError:
-        reason = "the 'sounddevice' package is not installed (pip install 'clampd[audio]')"
+        reason = _NOT_INSTALLED
     except OSError as exc:  # PortAudio library missing
-        reason = f"the PortAudio library is missing ({exc})"
+        reason = _no_portaudio(exc)
     except Exception as exc:  # sounddevice.PortAudioError: no device, busy, bad rate
         reason = f"no usable sound device ({type(exc).__name__}: {exc})"
-    return NullCuePlayer(), [f"cues: {reason}; cues are not played"]
+    # No "cues:" prefix: the caller names the source when it logs the line.
+    return NullCuePlayer(), [f"{reason}; cues are not played"]
+
+
+_NOT_INSTALLED = "the 'sounddevice' package is not installed (pip install 'clampd[audio]')"
+
+
+def _no_portaudio(exc: OSError) -> str:
+    return f"the PortAudio library is missing ({exc})"
+
+
+def device_output_problem() -> str | None:
+    """Why cue output "device" cannot play on this machine, or None when ``sounddevice`` and
+    its PortAudio library load. Opens no device (a workstation checking a board's file has
+    none), so a missing or busy device shows only when the daemon starts."""
+    try:
+        importlib.import_module("sounddevice")
+    except ImportError:
+        return _NOT_INSTALLED
+    except OSError as exc:
+        return _no_portaudio(exc)
+    return None

@@ -302,9 +302,11 @@ class Station:
         warnings: list[str] = []
         player = self._cue_player
         if player is None:
-            player, warnings = make_player(
-                cfg.cues.output, wav_dir=cfg.cues.wav_dir, volume=cfg.cues.volume
+            # Off the loop: it renders the sounds and may open a sound device.
+            made, warnings = await asyncio.to_thread(
+                make_player, cfg.cues.output, wav_dir=cfg.cues.wav_dir, volume=cfg.cues.volume
             )
+            player = made
         for w in warnings:
             _log.warning("cues: %s", w)
         outbox_cfg = cfg.outbox
