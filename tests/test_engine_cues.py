@@ -27,6 +27,7 @@ from clampd.daemon.engine import (
     Program,
     ProgramError,
     RundownFinished,
+    RundownStarted,
     SnugReached,
     Status,
     StopReached,
@@ -283,7 +284,7 @@ def test_pace_cue_slows_a_brisk_pull_before_the_joint_is_touched() -> None:
     first_fast = int(np.flatnonzero(r >= 30.0 / H_APPROACH)[0])
     # closed form: 50 samples at 1 kHz (one more when the float sum of the times falls short)
     assert abs(app[0].index - (first_fast + round(0.05 * FS))) <= 1
-    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    started = next(e for e in events if isinstance(e, RundownStarted))
     assert app[0].index < started.index
     # the earliest the target can come: one step angle away at the pull's rate
     assert app[0].predicted_crossing_t_s == pytest.approx(app[0].t_s + 30.0 / 90.0)
@@ -297,13 +298,13 @@ def test_no_pace_cue_for_an_unhurried_pull_or_a_torque_program() -> None:
     the prediction; a torque program has no angle step to pace."""
     t, T, r, _ = free_run_trace(30.0)
     events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
-    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    started = next(e for e in events if isinstance(e, RundownStarted))
     app = cues(events, CueKind.APPROACH)
     assert len(app) == 1
     assert app[0].index > started.index
     t, T, r, _ = free_run_trace(120.0)
     events = Engine(prog(strategy="torque", target_torque=50.0), SETTINGS).feed(t, T, r)
-    started = next(e for e in events if type(e).__name__ == "RundownStarted")
+    started = next(e for e in events if isinstance(e, RundownStarted))
     assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
 
 
