@@ -129,29 +129,67 @@ def test_windup_at_a_new_stroke_does_not_fire_the_stop_cue() -> None:
     assert cue[0].predicted_crossing_t_s == pytest.approx(stop.t_s, abs=DT + 1e-9)
 
 
-def test_rate_window_starts_with_the_stroke() -> None:
-    """The first stroke ends at 30 N·m after its stop cue (36 N·m target, predicted from
-    45 N·m/s); the technician pulls again. The re-armed cue waits until the rate window
-    (50 ms) lies wholly inside the resumed stroke, so the wind-up's steep rise cannot pull it
-    ahead: it fires 50 ms after the fastener turns again (torque 32.25 + 45·0.25 ≥ 36)."""
+def _torque_repull(pull_rate: float) -> tuple[F, F, F, F, int, int]:
+    """Torque program (36 N·m) on a 1.5 N·m/deg joint: the first stroke ends at 30 N·m after
+    its stop cue; back-swing, regrip, then a pull again at ``pull_rate``: a 20 ms wind-up at
+    40 deg/s (fastener still), then turning. Returns the trace, the swing and the pull."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(0.05, 60.0, 1.5, 0.0)
+    b.seg((30.0 - 1.5) / 45.0, 30.0, 30.0, (30.0 - 1.5) / 1.5)
+    swing = len(b.t)
+    b.seg(0.2, -200.0, 0.3, 0.0)
+    b.seg(0.1, 0.0, 0.3, 0.0)
+    pull = len(b.t)
+    b.seg(0.02, 40.0, 30.0, 0.0)  # wind-up in 20 ms
+    dur = 9.0 / pull_rate
+    b.seg(dur, pull_rate, 30.0 + 1.5 * 9.0, 9.0)
+    b.seg(0.05, 0.0, 0.0, 0.0)
+    b.seg(0.2, 0.0, 0.0, 0.0)
+    t, T, r, phi = b.arrays()
+    return t, T, r, phi, swing, pull
+
+
+def test_rearmed_torque_cue_predicts_from_the_handle() -> None:
+    """After the let-go, 6 N·m are left: 4° at the joint rate the first stroke showed
+    ((30 − 10) N·m over its 13.3° past snug, 1.5 N·m/deg). The wind-up is driven at 40 deg/s,
+    and 40 × 0.25 s = 10° ≥ 4°, so the cue fires again at the first forward sample of the new
+    pull, ahead of the fastener turning; not during the back-swing or the regrip."""
+    t, T, r, phi, swing, pull = _torque_repull(30.0)
+    events = Engine(prog(strategy="torque", target_torque=36.0), SETTINGS).feed(t, T, r)
+    cue = cues(events, CueKind.STOP)
+    assert len(cue) == 2
+    assert cue[0].index < swing
+    first_forward = swing + int(np.flatnonzero(r[swing:] > SETTINGS.rest_rate_dps)[0])
+    assert first_forward == pull
+    assert cue[1].index == pull
+    turning_again = pull + int(np.flatnonzero(np.diff(phi[pull:]) > 0.0)[0])
+    assert cue[1].index < turning_again
+
+
+def test_rearmed_torque_cue_waits_while_the_rest_is_beyond_one_reaction() -> None:
+    """The same let-go, but the wind-up is slow: with 40 deg/s in the wind-up the cue would
+    fire at once, so here the whole pull again runs at 10 deg/s (wind-up included). 10 × 0.25
+    = 2.5° < 4°: the cue waits until the rest is 2.5° × 1.5 N·m/deg = 3.75 N·m, i.e. torque
+    32.25 N·m (closed form), within a sample."""
     b = Build()
     b.seg(0.3, 0.0, 0.0, 0.0)
     b.seg(0.05, 60.0, 1.5, 0.0)
     b.seg((30.0 - 1.5) / 45.0, 30.0, 30.0, (30.0 - 1.5) / 1.5)
     b.seg(0.2, -200.0, 0.3, 0.0)
     b.seg(0.1, 0.0, 0.3, 0.0)
-    resume = len(b.t)
-    b.seg(0.02, 40.0, 30.0, 0.0)  # wind-up in 20 ms
-    b.seg(0.3, 30.0, 43.5, 9.0)
+    pull = len(b.t)
+    b.seg(0.08, 10.0, 30.0, 0.0)  # wind-up at the pull's own pace
+    b.seg(0.9, 10.0, 30.0 + 1.5 * 9.0, 9.0)
     b.seg(0.05, 0.0, 0.0, 0.0)
     b.seg(0.2, 0.0, 0.0, 0.0)
-    t, T, r, phi = b.arrays()
+    t, T, r, _ = b.arrays()
     events = Engine(prog(strategy="torque", target_torque=36.0), SETTINGS).feed(t, T, r)
     cue = cues(events, CueKind.STOP)
     assert len(cue) == 2
-    turning_again = resume + int(np.flatnonzero(np.diff(phi[resume:]) > 0.0)[0])
-    assert cue[0].index < resume
-    assert abs(cue[1].index - (turning_again + round(0.05 * FS))) <= 1
+    k = cue[1].index
+    assert k > pull
+    assert T[k] >= 32.25 - 1e-9 > T[k - 1]
 
 
 # ------------------------------------------------------------------ early approach
@@ -304,6 +342,26 @@ def test_no_pace_cue_for_an_unhurried_pull_or_a_torque_program() -> None:
     assert app[0].index > started.index
     t, T, r, _ = free_run_trace(120.0)
     events = Engine(prog(strategy="torque", target_torque=50.0), SETTINGS).feed(t, T, r)
+    started = next(e for e in events if isinstance(e, RundownStarted))
+    assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
+
+
+def test_torque_program_paces_from_its_angle_window() -> None:
+    """A torque program whose angle window starts at 20° says its target comes no sooner than
+    20° past snug: the pace is 20/0.75 ≈ 26.7 deg/s, so a 90 deg/s free run hears the approach
+    cue after the rate window, before the head touches; a 20 deg/s one does not."""
+    program = prog(strategy="torque", target_torque=50.0, angle_window=[20.0, 60.0])
+    t, T, r, _ = free_run_trace(90.0)
+    events = Engine(program, SETTINGS).feed(t, T, r)
+    started = next(e for e in events if isinstance(e, RundownStarted))
+    app = cues(events, CueKind.APPROACH)
+    assert len(app) == 1
+    first_fast = int(np.flatnonzero(r >= 20.0 / H_APPROACH)[0])
+    assert abs(app[0].index - (first_fast + round(0.05 * FS))) <= 1
+    assert app[0].index < started.index
+    assert app[0].predicted_crossing_t_s == pytest.approx(app[0].t_s + 20.0 / 90.0)
+    t, T, r, _ = free_run_trace(20.0)
+    events = Engine(program, SETTINGS).feed(t, T, r)
     started = next(e for e in events if isinstance(e, RundownStarted))
     assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
 

@@ -84,14 +84,15 @@ open). An angle step's approach cue may come before snug: the time to snug is ex
 from the torque trend and the angle counted since the start gives the rate, so a fast pull on
 a short step still hears it in time to slow down; a stop cue never comes before snug. Earlier
 still, the pace cue: while idle, before the joint is touched, nothing tells how far snug is,
-so the earliest the first angle step can end is its own aim point away; a pull that has gone
-faster than (that aim ÷ the approach horizon) for ``cue_rate_window_s`` hears that step's
-approach cue at once (on a short step a brisk pull leaves less than a reaction time between
-seating and target). A stop cue is re-armed when the technician let go short of the target
-and drives the wrench again: a torque step at the next stroke, predicting as before; an angle
-step once the handle halted and then moves forward again, predicting from the handle's rate
-(the gyro sees the handle at once, before the ratchet's play and the wind-up are taken up),
-less the wind-up still to take up. No cue fires later than the crossing of the target itself.
+so the earliest the first angle step can end is its own aim point away (a torque program's,
+the lower limit of its angle window); a pull that has gone faster than (that angle ÷ the
+approach horizon) for ``cue_rate_window_s`` hears that step's approach cue at once (a brisk
+pull leaves less than a reaction time between seating and target). A stop cue is re-armed
+when the technician let go short of the target and drives the wrench again: once the handle
+halted and then moves forward again, predicting from the handle's rate (the gyro sees the
+handle at once, before the ratchet's play and the wind-up are taken up), less the wind-up
+still to take up; a torque step converts the torque still missing to degrees with the joint
+rate its last stroke showed. No cue fires later than the crossing of the target itself.
 """
 
 from __future__ import annotations
@@ -220,10 +221,17 @@ class _Params:
         self.rest_rate = s.rest_rate_dps
         # The pace cue (see "Cueing"): before the joint is touched nothing tells how far away
         # snug is, so the earliest the first angle step can end is its own aim point away; a
-        # pull faster than that aim over the approach horizon hears the approach cue at once.
+        # pull faster than that over the approach horizon hears the approach cue at once.
+        # For a torque program the earliest is the lower limit of its angle window: the
+        # program itself says the target torque comes no sooner past snug.
+        self.pace_angle = math.inf
+        if self.early:
+            self.pace_angle = self.aim_point(0, self.steps[0], 0.0)
+        elif p.strategy is Strategy.TORQUE and self.angle_window is not None:
+            self.pace_angle = self.angle_window[0] if self.angle_window[0] > 0.0 else math.inf
         self.pace_dps = math.inf
-        if self.early and self.h_approach > 0.0:
-            self.pace_dps = self.aim_point(0, self.steps[0], 0.0) / self.h_approach
+        if self.h_approach > 0.0 and math.isfinite(self.pace_angle):
+            self.pace_dps = self.pace_angle / self.h_approach
 
     def aim_point(self, step: int, spec: _StepSpec, base: float) -> float:
         """Where the stop cue aims for a step that began at ``base``: ``cue_aim`` of the way
@@ -297,6 +305,7 @@ class _Rundown:
         self.stop_cue_at: dict[int, int] = {}  # step -> local index of its latest stop cue
         self.rearm: tuple[int, int, int] = (-1, 0, 0)  # see Engine._stop_from
         self.rearm_level = 0.0  # peak torque of the stroke that carried the last stop cue
+        self.rearm_rate = math.inf  # a torque step's joint rate up to that peak, N·m/deg
         self.cues: list[CueRecord] = []
         self.stop: StopPoint | None = None
         self.yield_point: YieldPoint | None = None
@@ -629,8 +638,8 @@ class Engine:
 
     def _pace(self, t: FloatArray, r: FloatArray, gi0: int, events: list[Event]) -> None:
         """The pace cue: the first idle sample that ends ``cue_rate_window_s`` of pulling
-        faster than ``_Params.pace_dps`` fires the first angle step's approach cue, once
-        between rundowns.
+        faster than ``_Params.pace_dps`` fires the first step's approach cue, once between
+        rundowns.
 
         On a short angle step a brisk pull leaves less than a reaction time between the joint
         seating and the target, so the technician must be slowed before the joint is
@@ -656,8 +665,7 @@ class Engine:
         if k == m:
             return
         tk = float(t[k])
-        spec = P_.steps[0]
-        pred = tk + P_.aim_point(0, spec, 0.0) / float(r[k])
+        pred = tk + P_.pace_angle / float(r[k])
         cue = CueRecord(
             kind=CueKind.APPROACH, step=0, index=gi0 + k, t_s=tk, predicted_crossing_t_s=pred
         )
@@ -1106,24 +1114,22 @@ class Engine:
 
     def _stop_from(self, R: _Rundown, spec: _StepSpec, n0: int, p: int, m: int) -> tuple[int, bool]:
         """Where in chunk[p:m] this step's stop cue is armed from (``m``: nowhere), and whether
-        it then predicts from the handle's rate (a re-armed angle step) rather than from the
-        driven quantity's trend.
+        it then predicts from the handle's rate (a re-armed torque or angle step) rather than
+        from the driven quantity's trend.
 
         Once fired, the cue is re-armed when the technician let go short of the target and
-        drives the wrench again. A torque step re-arms at the next stroke and predicts as
-        before. An angle step re-arms once the handle halted (rate no longer forward) and
-        then moves forward again (rate above the rest level, or a new stroke), even if the
-        fastener never turned in between: the rest of the way is short, and a prediction
-        from the counted angle needs the ratchet's play, the wind-up and a rate window behind
-        it, a reaction time too late.
-        The gyro sees the handle from its first motion, so the cue predicts from that (see
-        ``_active``).
+        drives the wrench again: once the handle halted (rate no longer forward) and then
+        moves forward again (rate above the rest level, or a new stroke), even if the fastener
+        never turned in between. The rest of the way is short, and a prediction from the
+        driven quantity needs the ratchet's play, the wind-up and a rate window behind it, a
+        reaction time too late; the gyro sees the handle from its first motion, so the cue
+        predicts from that (see ``_active``). A yield step's cue fires at yield, which ends it.
         """
         last = R.stop_cue_at.get(R.step)
         if last is None:
             return p, False
         b = n0 + m
-        if spec.kind != _ANGLE:
+        if spec.kind == _YIELD:
             ss = R.stroke_starts
             w = int(np.searchsorted(np.asarray(ss, dtype=np.intp), last, side="right"))
             if w == len(ss) or ss[w] >= b:
@@ -1146,7 +1152,13 @@ class Engine:
                     - 1
                 )
                 s0 = R.stroke_starts[i] if i >= 0 else c
-                R.rearm_level = float(R.T[s0 : c + 1].max())
+                pk = s0 + int(np.argmax(R.T[s0 : c + 1]))
+                R.rearm_level = float(R.T[pk])
+                # a torque step's joint rate: the secant from snug to that peak (N·m per
+                # counted degree); none measurable so close to snug: the rest counts as 0°
+                th_pk = float(R.th[pk]) - R.step_base
+                T_snug = float(R.T[R.snug]) if R.snug is not None else self._p.snug
+                R.rearm_rate = (R.rearm_level - T_snug) / th_pk if th_pk > 0.1 else math.inf
         if phase == 1:
             c += _first((R.rc[c:b] > self._p.rest_rate) | R.turn[c:b])
             phase = 2 if c < b else 1
@@ -1202,13 +1214,21 @@ class Engine:
                 stop_from, by_handle = self._stop_from(R, spec, n0, p, m)
                 need_stop = stop_from < m
                 if cue_ok and need_stop and by_handle:
-                    # re-armed angle step: the handle's rate predicts, less the wind-up still
-                    # to take up before the fastener turns (the ratchet's play is unknown)
+                    # re-armed step: the handle's rate predicts the travel within latency +
+                    # reaction, less the wind-up still to take up before the fastener turns
+                    # (the ratchet's play is unknown); a torque step's rest of the way in
+                    # degrees from its joint rate
                     q, b0 = stop_from, n0 + stop_from
                     rcq = R.rc[b0 : n0 + m]
-                    wind = np.maximum(R.rearm_level - R.T[b0 : n0 + m], 0.0) * P_.defl
-                    ahead = R.th[b0 : n0 + m] - R.step_base + rcq * P_.h_stop - wind
-                    hit = (rcq > P_.rest_rate) & (ahead >= self._aim(R, spec))
+                    Tq = R.T[b0 : n0 + m]
+                    wind = np.maximum(R.rearm_level - Tq, 0.0) * P_.defl
+                    aim = self._aim(R, spec)
+                    if spec.kind == _ANGLE:
+                        ahead = R.th[b0 : n0 + m] - R.step_base + rcq * P_.h_stop - wind
+                        hit = (rcq > P_.rest_rate) & (ahead >= aim)
+                    else:
+                        rest = np.maximum(aim - np.maximum(Tq, R.rearm_level), 0.0) / R.rearm_rate
+                        hit = (rcq > P_.rest_rate) & (rcq * P_.h_stop - wind >= rest)
                     take(q + _first(hit), "cue_stop")
                     need_stop = False
                 if state is State.RUNDOWN and spec.kind == _ANGLE and need_app:
