@@ -199,8 +199,11 @@ def wrench_config(address: str, **extra: Any) -> WrenchConfig:
 class Setup:
     program: dict[str, Any] = dataclasses.field(default_factory=lambda: dict(TORQUE_PROGRAM))
     operator: OperatorParams = dataclasses.field(
+        # A technician who listens for the verdict and pulls again when the tool has not said
+        # done (the stop cue aims at the target, so about half of all stops fall just short);
+        # one who walks away instead leaves the rundown open until its timeout.
         default_factory=lambda: OperatorParams(
-            steady_rate_dps=30.0, part_pause_s=(0.4, 0.6), start_delay_s=0.5
+            steady_rate_dps=30.0, part_pause_s=(0.4, 0.6), start_delay_s=0.5, confirm_wait_s=1.0
         )
     )
     joints: int = 1
@@ -493,15 +496,7 @@ async def test_a_result_refused_by_a_full_outbox_is_held_and_stored_once_room_is
     assert rig.station.done == [("bolt-1", payload_of(stored[0]).status)]
 
 
-# The technician listens for the verdict and pulls again when the tool has not said done
-# (the stop cue aims at the target, so about half of all stops fall just short); one who walks
-# away instead leaves the rundown open until its timeout, and the next joint would run into it.
-_LISTENING = OperatorParams(
-    steady_rate_dps=30.0, part_pause_s=(0.4, 0.6), start_delay_s=0.5, confirm_wait_s=1.0
-)
-
-
-@pytest.mark.parametrize("rig", [Setup(joints=2, operator=_LISTENING)], indirect=True)
+@pytest.mark.parametrize("rig", [Setup(joints=2)], indirect=True)
 async def test_a_program_change_applies_from_the_next_rundown_only(rig: Rig) -> None:
     await rig.until(lambda: any(isinstance(ev, LiveSnug) for _, ev in rig.sinks.live))
     # Mid-rundown: the MES selects another program; this rundown keeps the one it started with.
