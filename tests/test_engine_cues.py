@@ -348,8 +348,9 @@ def test_no_pace_cue_for_an_unhurried_pull_or_a_torque_program() -> None:
 
 def test_torque_program_paces_from_its_angle_window() -> None:
     """A torque program whose angle window starts at 20° says its target comes no sooner than
-    20° past snug: the pace is 20/0.75 ≈ 26.7 deg/s, so a 90 deg/s free run hears the approach
-    cue after the rate window, before the head touches; a 20 deg/s one does not."""
+    20° past snug: the pace is 20/0.75 ≈ 26.7 deg/s, raised to the engine's 30 deg/s floor, so
+    a 90 deg/s free run hears the approach cue after the rate window, before the head
+    touches; a 20 deg/s one does not."""
     program = prog(strategy="torque", target_torque=50.0, angle_window=[20.0, 60.0])
     t, T, r, _ = free_run_trace(90.0)
     events = Engine(program, SETTINGS).feed(t, T, r)
@@ -364,6 +365,57 @@ def test_torque_program_paces_from_its_angle_window() -> None:
     events = Engine(program, SETTINGS).feed(t, T, r)
     started = next(e for e in events if isinstance(e, RundownStarted))
     assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
+
+
+def test_pace_floor_lets_a_controlled_pull_be() -> None:
+    """An angle window from 3° would pace at 3/0.75 = 4 deg/s, slower than any controlled
+    finishing pull: the floor (30 deg/s, our choice) leaves a 25 deg/s free run alone."""
+    program = prog(strategy="torque", target_torque=50.0, angle_window=[3.0, 60.0])
+    t, T, r, _ = free_run_trace(25.0)
+    events = Engine(program, SETTINGS).feed(t, T, r)
+    started = next(e for e in events if isinstance(e, RundownStarted))
+    assert all(c.index > started.index for c in cues(events, CueKind.APPROACH))
+
+
+def test_a_stale_pace_cue_neither_blocks_the_next_nor_speaks_for_the_rundown() -> None:
+    """The wrench is swung about its axis at 90 deg/s for 0.2 s while carried to the bolt
+    (a pace cue), rests 2 s, then the technician runs the nut down at 90 deg/s: the earlier
+    cue went stale (its earliest crossing + the approach horizon lies before the new pull),
+    so the new stretch fires its own pace cue, and only that one counts for the rundown."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(0.2, 90.0, 0.0, 0.0)  # carried: the gyro turns, the fastener does not
+    b.seg(2.0, 0.0, 0.0, 0.0)
+    pull = len(b.t)
+    b.seg(0.6, 90.0, 0.0, 54.0)
+    b.seg(5.0 / 90.0, 90.0, 10.0, 5.0)
+    b.seg(40.0 / 90.0, 90.0, 70.0, 40.0)
+    b.seg(0.05, 0.0, 0.0, 0.0)
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    t, T, r, _ = b.arrays()
+    events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
+    app = cues(events, CueKind.APPROACH)
+    assert len(app) == 2
+    assert app[0].index < pull <= app[1].index
+    result = next(e.result for e in events if isinstance(e, RundownFinished))
+    assert [c.index for c in result.cues if c.kind is CueKind.APPROACH] == [app[1].index]
+
+
+def test_one_pace_cue_per_stretch_of_pulling() -> None:
+    """A long brisk free run (3 s at 90 deg/s, well past the first cue's freshness) hears one
+    pace cue, not one every horizon."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(3.0, 90.0, 0.0, 270.0)
+    b.seg(5.0 / 90.0, 90.0, 10.0, 5.0)
+    b.seg(40.0 / 90.0, 90.0, 70.0, 40.0)
+    b.seg(0.05, 0.0, 0.0, 0.0)
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    t, T, r, _ = b.arrays()
+    events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
+    started = next(e for e in events if isinstance(e, RundownStarted))
+    before = [c for c in cues(events, CueKind.APPROACH) if c.index < started.index]
+    assert len(before) == 1
 
 
 @pytest.mark.parametrize("frame", [1, 7, 22])

@@ -151,6 +151,10 @@ _MIN_FIT_POINTS = 3
 _NEVER = int(np.iinfo(np.intp).max)
 
 _TORQUE, _ANGLE, _YIELD = "torque", "angle", "yield"
+# The pace cue never asks for a pull slower than this: slower ones are already a controlled
+# finishing pull, and a wrench carried from bolt to bolt turns about its axis slowly enough
+# not to set it off most of the time. Our choice (no published figure at hand).
+_PACE_FLOOR_DPS = 30.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -231,7 +235,7 @@ class _Params:
             self.pace_angle = self.angle_window[0] if self.angle_window[0] > 0.0 else math.inf
         self.pace_dps = math.inf
         if self.h_approach > 0.0 and math.isfinite(self.pace_angle):
-            self.pace_dps = self.pace_angle / self.h_approach
+            self.pace_dps = max(self.pace_angle / self.h_approach, _PACE_FLOOR_DPS)
 
     def aim_point(self, step: int, spec: _StepSpec, base: float) -> float:
         """Where the stop cue aims for a step that began at ``base``: ``cue_aim`` of the way
@@ -417,6 +421,7 @@ class Engine:
         # starts and takes it as its first step's approach cue
         self._pace_from: float | None = None
         self._pace_cue: CueRecord | None = None
+        self._pace_used = math.nan  # start of the stretch that fired the last pace cue
         self._run_prev: tuple[float, float] | None = None  # (t, raw rate) of the last idle sample
         self._run_last_move = -math.inf  # time of the last idle sample not at rest
 
@@ -457,6 +462,7 @@ class Engine:
         self._p = _Params(program, self._settings)
         self._pace_from = None
         self._pace_cue = None
+        self._pace_used = math.nan
 
     def feed(self, t_s: ArrayLike, torque_nm: ArrayLike, rate_dps: ArrayLike) -> list[Event]:
         """Consume one frame or one sample; return the events it caused."""
@@ -637,17 +643,17 @@ class Engine:
         return None if k == m else k
 
     def _pace(self, t: FloatArray, r: FloatArray, gi0: int, events: list[Event]) -> None:
-        """The pace cue: the first idle sample that ends ``cue_rate_window_s`` of pulling
-        faster than ``_Params.pace_dps`` fires the first step's approach cue, once between
-        rundowns.
+        """The pace cue: an idle sample that ends ``cue_rate_window_s`` of pulling faster than
+        ``_Params.pace_dps`` fires the first step's approach cue; at most once per such
+        stretch of pulling, and not again while the last one is fresh (see ``_pace_fresh``).
 
-        On a short angle step a brisk pull leaves less than a reaction time between the joint
-        seating and the target, so the technician must be slowed before the joint is
-        touched; the raw rate suffices (a gyro bias of a few deg/s is small beside the pace).
+        A brisk pull leaves less than a reaction time between the joint seating and a short
+        target, so the technician must be slowed before the joint is touched; the raw rate
+        suffices (a gyro bias of a few deg/s is small beside the pace).
         """
         m = t.shape[0]
         P_ = self._p
-        if m == 0 or self._pace_cue is not None or P_.pace_dps == math.inf:
+        if m == 0 or P_.pace_dps == math.inf:
             return
         fast = r >= P_.pace_dps
         if not fast.any():
@@ -660,22 +666,41 @@ class Engine:
         seed[0] = -math.inf if self._pace_from is None else self._pace_from
         seed[1:] = np.where(fast & ~was[:-1], t, -math.inf)
         since = np.maximum.accumulate(seed)[1:]
-        k = _first(fast & (t - since >= P_.cue_window))
         self._pace_from = float(since[-1]) if fast[-1] else None
-        if k == m:
-            return
-        tk = float(t[k])
-        pred = tk + P_.pace_angle / float(r[k])
-        cue = CueRecord(
-            kind=CueKind.APPROACH, step=0, index=gi0 + k, t_s=tk, predicted_crossing_t_s=pred
-        )
-        self._pace_cue = cue
-        self._pace_from = None
-        events.append(
-            CueFired(
+        ready = fast & (t - since >= P_.cue_window)
+        k = 0
+        while True:
+            cue = self._pace_cue
+            cand = ready[k:] & (since[k:] != self._pace_used)
+            if cue is not None:
+                cand &= t[k:] > cue.predicted_crossing_t_s + P_.h_approach
+            k += _first(cand)
+            if k == m:
+                return
+            tk = float(t[k])
+            pred = tk + P_.pace_angle / float(r[k])
+            self._pace_cue = CueRecord(
                 kind=CueKind.APPROACH, step=0, index=gi0 + k, t_s=tk, predicted_crossing_t_s=pred
             )
-        )
+            self._pace_used = float(since[k])
+            events.append(
+                CueFired(
+                    kind=CueKind.APPROACH,
+                    step=0,
+                    index=gi0 + k,
+                    t_s=tk,
+                    predicted_crossing_t_s=pred,
+                )
+            )
+            k += 1
+
+    def _pace_fresh(self, t_s: float) -> bool:
+        """Whether the last pace cue still speaks for a rundown starting at ``t_s``: until an
+        approach horizon past the earliest crossing it predicted. Older, the technician was
+        not on this joint yet (a wrench carried to the bolt, a slow free run after it), and
+        the rundown may hear its own approach cue."""
+        cue = self._pace_cue
+        return cue is not None and t_s <= cue.predicted_crossing_t_s + self._p.h_approach
 
     def _keep_idle(self, t: FloatArray, T: FloatArray, r: FloatArray) -> None:
         """Keep the idle samples taken at rest (the only ones that show the gyro's bias) and
@@ -784,11 +809,13 @@ class Engine:
                     bias = float(np.mean(self._rest_r[sel]))
         self._state = next_state(self._state, Input.START)
         self._r = R = _Rundown(index, bias, t0, T0, self._take_runin(bias))
-        if self._pace_cue is not None:  # it was this rundown's first approach cue
+        if self._pace_cue is not None and self._pace_fresh(t0):
+            # it was this rundown's first approach cue
             R.fired.add((CueKind.APPROACH, 0))
             R.cues.append(self._pace_cue)
-            self._pace_cue = None
+        self._pace_cue = None
         self._pace_from = None
+        self._pace_used = math.nan
         events.append(
             RundownStarted(
                 index=index, t_s=t0, torque_nm=T0, gyro_bias_dps=bias, program_id=self._program.id
