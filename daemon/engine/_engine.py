@@ -86,13 +86,15 @@ a short step still hears it in time to slow down; a stop cue never comes before 
 still, the pace cue: while idle, before the joint is touched, nothing tells how far snug is,
 so the earliest the first angle step can end is its own aim point away (a torque program's,
 the lower limit of its angle window); a pull that has gone faster than (that angle ÷ the
-approach horizon) for ``cue_rate_window_s`` hears that step's approach cue at once (a brisk
-pull leaves less than a reaction time between seating and target). A stop cue is re-armed
-when the technician let go short of the target and drives the wrench again: once the handle
-halted and then moves forward again, predicting from the handle's rate (the gyro sees the
-handle at once, before the ratchet's play and the wind-up are taken up), less the wind-up
-still to take up; a torque step converts the torque still missing to degrees with the joint
-rate its last stroke showed. No cue fires later than the crossing of the target itself.
+approach horizon, never below 30 deg/s) for ``cue_rate_window_s`` hears that step's approach
+cue at once (a brisk pull leaves less than a reaction time between seating and target); once
+per stretch of pulling, and it stands for the rundown's approach cue only while fresh. A stop
+cue is re-armed when the technician let go short of the target and drives the wrench again:
+once the handle halted and then moves forward again, predicting from the handle's rate (the
+gyro sees the handle at once, before the ratchet's play and the wind-up are taken up), less
+the wind-up still to take up; a torque step converts the torque still missing to degrees with
+the joint rate its last stroke showed. No cue fires later than the crossing of the target
+itself.
 """
 
 from __future__ import annotations
