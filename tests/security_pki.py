@@ -28,6 +28,7 @@ import dataclasses
 import datetime as dt
 import ipaddress
 import os
+import random
 import signal
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
@@ -37,6 +38,8 @@ from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
+from clampd.daemon.runtime import BrokerConfig, MqttSession, StationState
+from clampd.protocol import Topics
 from clampd.simulators._broker import BrokerUnavailableError, mosquitto_path
 
 __all__ = [
@@ -311,3 +314,24 @@ async def wait_until(check: Callable[[], bool], what: str, timeout_s: float = 20
                 await asyncio.sleep(0.02)
     except TimeoutError:
         raise AssertionError(f"gave up waiting for {what} after {timeout_s} s") from None
+
+
+def station_session(
+    port: int, pki: Pki, topics: Topics, state: StationState, station_id: str, *, seed: int
+) -> MqttSession:
+    """The station's own MQTT session on the deploy broker: mutual TLS with the station's
+    client certificate (its CN is the identity the ACL matches), as a board runs it."""
+    ident = pki.client(station_id)
+    return MqttSession(
+        BrokerConfig(
+            url=f"mqtts://127.0.0.1:{port}",
+            tls_ca=pki.ca,
+            tls_cert=ident.cert,
+            tls_key=ident.key,
+        ),
+        topics,
+        station_id=station_id,
+        client_id=f"clampd-{station_id}",
+        status_provider=state.status,
+        rng=random.Random(seed),
+    )

@@ -18,16 +18,15 @@ from __future__ import annotations
 
 import asyncio
 import json
-import random
 import sys
 from collections.abc import AsyncIterator
 from pathlib import Path
 
 import aiomqtt
 import pytest
-from security_pki import Pki, deploy_broker_config, make_pki, run_mosquitto
+from security_pki import Pki, deploy_broker_config, make_pki, run_mosquitto, station_session
 
-from clampd.daemon.runtime import BrokerConfig, CommandHandler, MqttSession, StationState
+from clampd.daemon.runtime import CommandHandler, StationState
 from clampd.protocol import CommandName, Reply, ReplyStatus, Topics
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "protocol" / "examples"
@@ -100,21 +99,8 @@ async def test_the_station_answers_an_example_on_its_reply_topic(
     reply_to = doc["reply_to"]
     command = CommandName(doc["kind"])
     topics = Topics(f"{LINE}/{ST}")
-    ident = pki.client(ST)
     state = StationState.from_tables(ST, [SPINDLE], {"wr-07": 100.0})
-    session = MqttSession(
-        BrokerConfig(
-            url=f"mqtts://127.0.0.1:{acl_port}",
-            tls_ca=pki.ca,
-            tls_cert=ident.cert,
-            tls_key=ident.key,
-        ),
-        topics,
-        station_id=ST,
-        client_id=f"clampd-{ST}",
-        status_provider=state.status,
-        rng=random.Random(7),
-    )
+    session = station_session(acl_port, pki, topics, state, ST, seed=7)
     async with _mes(acl_port, pki) as mes, session, asyncio.TaskGroup() as tg:
         await mes.subscribe(reply_to, qos=1)
         handler = CommandHandler(session, state, topics)

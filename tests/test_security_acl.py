@@ -42,6 +42,7 @@ from security_pki import (
     deploy_broker_config,
     make_pki,
     run_mosquitto,
+    station_session,
     wait_until,
 )
 
@@ -217,21 +218,8 @@ async def test_the_mes_commands_a_station_and_reads_its_reply_under_the_station_
     """The product end to end under the ACL: session subscribes and announces, the handler
     answers to the MES's response topic below ``mes/reply/<station-id>/``."""
     topics = Topics(f"{LINE}/{ST}")
-    ident = pki.client(ST)
     state = StationState.from_tables(ST, [DECK], {"w-blue": 60.0})
-    session = MqttSession(
-        BrokerConfig(
-            url=f"mqtts://127.0.0.1:{acl_broker.port}",
-            tls_ca=pki.ca,
-            tls_cert=ident.cert,
-            tls_key=ident.key,
-        ),
-        topics,
-        station_id=ST,
-        client_id=f"clampd-{ST}",
-        status_provider=state.status,
-        rng=random.Random(3),
-    )
+    session = station_session(acl_broker.port, pki, topics, state, ST, seed=3)
     reply_topic = f"mes/reply/{ST}/order-4471"
     async with acl_broker.client("mes-gateway") as mes, session, asyncio.TaskGroup() as tg:
         await mes.subscribe(reply_topic, qos=1)
