@@ -298,17 +298,22 @@ def test_cue_aim_is_validated() -> None:
 
 
 # ------------------------------------------------------------------ pace cue
-def free_run_trace(omega: float) -> tuple[F, F, F, F]:
-    """A free run-down (no torque) at ``omega`` deg/s for 0.6 s, the head touches (torque to
-    10 N·m over 5°, snug), then 1.5 N·m/deg to 40° past snug at the same rate; release."""
-    b = Build()
-    b.seg(0.3, 0.0, 0.0, 0.0)
-    b.seg(0.6, omega, 0.0, 0.6 * omega)
+def seat_and_tighten(b: Build, omega: float) -> tuple[F, F, F, F]:
+    """At ``omega`` deg/s the head touches (torque to 10 N·m over 5°, snug), then 1.5 N·m/deg
+    to 40° past snug; release and rest. Returns the finished trace."""
     b.seg(5.0 / omega, omega, 10.0, 5.0)
     b.seg(40.0 / omega, omega, 70.0, 40.0)
     b.seg(0.05, 0.0, 0.0, 0.0)
     b.seg(0.3, 0.0, 0.0, 0.0)
     return b.arrays()
+
+
+def free_run_trace(omega: float) -> tuple[F, F, F, F]:
+    """A free run-down (no torque) at ``omega`` deg/s for 0.6 s, then ``seat_and_tighten``."""
+    b = Build()
+    b.seg(0.3, 0.0, 0.0, 0.0)
+    b.seg(0.6, omega, 0.0, 0.6 * omega)
+    return seat_and_tighten(b, omega)
 
 
 def test_pace_cue_slows_a_brisk_pull_before_the_joint_is_touched() -> None:
@@ -388,11 +393,7 @@ def test_a_stale_pace_cue_neither_blocks_the_next_nor_speaks_for_the_rundown() -
     b.seg(2.0, 0.0, 0.0, 0.0)
     pull = len(b.t)
     b.seg(0.6, 90.0, 0.0, 54.0)
-    b.seg(5.0 / 90.0, 90.0, 10.0, 5.0)
-    b.seg(40.0 / 90.0, 90.0, 70.0, 40.0)
-    b.seg(0.05, 0.0, 0.0, 0.0)
-    b.seg(0.3, 0.0, 0.0, 0.0)
-    t, T, r, _ = b.arrays()
+    t, T, r, _ = seat_and_tighten(b, 90.0)
     events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
     app = cues(events, CueKind.APPROACH)
     assert len(app) == 2
@@ -407,11 +408,7 @@ def test_one_pace_cue_per_stretch_of_pulling() -> None:
     b = Build()
     b.seg(0.3, 0.0, 0.0, 0.0)
     b.seg(3.0, 90.0, 0.0, 270.0)
-    b.seg(5.0 / 90.0, 90.0, 10.0, 5.0)
-    b.seg(40.0 / 90.0, 90.0, 70.0, 40.0)
-    b.seg(0.05, 0.0, 0.0, 0.0)
-    b.seg(0.3, 0.0, 0.0, 0.0)
-    t, T, r, _ = b.arrays()
+    t, T, r, _ = seat_and_tighten(b, 90.0)
     events = Engine(prog(strategy="torque-angle", target_angle=30.0), SETTINGS).feed(t, T, r)
     started = next(e for e in events if isinstance(e, RundownStarted))
     before = [c for c in cues(events, CueKind.APPROACH) if c.index < started.index]
